@@ -1,0 +1,161 @@
+"""The one path data takes: load -> graph -> (references) -> model -> sample -> summarise.
+
+``check`` stops before the model; ``fit`` goes all the way and returns
+everything in memory; :mod:`smootharea.outputs` writes it to disk.
+"""
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass, field
+from typing import Any
+
+import arviz as az
+import geopandas as gpd
+import numpy as np
+import pandas as pd
+
+from .diagnostics import Verdict, assess_convergence
+from .frequentist import FrequentistReferences, fit_references
+from .graph import NeighbourGraph, build_graph
+from .job import Job, threshold_label
+from .load import load_study
+from .model import build_model
+from .provenance import package_versions, utc_now
+from .recipes import Recipe, load_recipe
+from .sampling import sample_posterior
+from .study import StudyData
+from .summarise import (area_table, fixed_effects, hyperparameters, model_comparison,
+                        ranking_table, relative_risk_draws)
+
+
+@dataclass(frozen=True)
+class PreparedStudy:
+    """Validated data, its neighbour graph and the frequentist references."""
+
+    job: Job
+    study: StudyData
+    graph: NeighbourGraph
+    references: FrequentistReferences
+
+
+@dataclass
+class FitResult:
+    """Everything one estimation produced, before it is written anywhere."""
+
+    prepared: PreparedStudy
+    recipe: Recipe
+    idata: az.InferenceData
+    verdict: Verdict
+    areas: gpd.GeoDataFrame
+    ranking: pd.DataFrame
+    model_info: dict[str, Any]
+    timings: dict[str, float] = field(default_factory=dict)
+
+    @property
+    def converged(self) -> bool:
+        return self.verdict.converged
+
+
+def prepare(job: Job) -> PreparedStudy:
+    """Load and validate inputs, build the graph, fit the frequentist references."""
+    study = load_study(job)
+    graph = build_graph(study.areas, job.neighbours)
+    references = fit_references(study.observed, study.expected, study.covariates, graph)
+    return PreparedStudy(job=job, study=study, graph=graph, references=references)
+
+
+def check_summary(prepared: PreparedStudy) -> dict[str, Any]:
+    """The ``smootharea check --json`` object."""
+    study, graph, references = prepared.study, prepared.graph, prepared.references
+    summary = graph.summary()
+    sizes = list(summary["components"])
+    factors = [float(s) for s in graph.scaling_factors if np.isfinite(s)]
+    refs = references.to_dict()
+    return {
+        "job": prepared.job.description.name,
+        "areas": int(study.n_areas),
+        "links": int(summary["links"]),
+        "mean_neighbours": float(summary["mean_neighbours"]),
+        "max_neighbours": int(summary["max_neighbours"]),
+        "islands": [str(i) for i in summary["islands"]],
+        "components": [int(s) for s in sizes],
+        "scaling_factors": factors,
+        "observed_total": int(study.observed.sum()),
+        "expected_total": float(study.expected.sum()),
+        "standardisation": study.standardisation,
+        "overdispersion": refs["overdispersion"],
+        "morans_i": refs["morans_i"],
+        "glm": refs["glm"],
+        "negative_binomial": refs.get("negative_binomial"),
+        "warnings": list(study.warnings),
+    }
+
+
+def fit(job: Job, progress: bool | None = None, prepared: PreparedStudy | None = None) -> FitResult:
+    """Run the whole estimation in memory and summarise it."""
+    timings: dict[str, float] = {}
+    started = time.perf_counter()
+    prepared = prepared or prepare(job)
+    timings["prepare_seconds"] = time.perf_counter() - started
+    recipe = load_recipe(job.model.recipe, base_dir=job.base_dir)
+
+    started = time.perf_counter()
+    model = build_model(prepared.study, prepared.graph, recipe)
+    idata = sample_posterior(model, job.sampling, recipe, progress=progress)
+    timings["sampling_seconds"] = time.perf_counter() - started
+
+    verdict = assess_convergence(idata)
+    return summarise_fit(prepared, recipe, idata, verdict, timings)
+
+
+def summarise_fit(prepared: PreparedStudy, recipe: Recipe, idata: az.InferenceData,
+                  verdict: Verdict, timings: dict[str, float] | None = None,
+                  approximate: str | None = None) -> FitResult:
+    """Turn a posterior into the per-area table, the ranking and the model record."""
+    job, study = prepared.job, prepared.study
+    draws = relative_risk_draws(idata)
+    thresholds = job.report.thresholds
+    table = area_table(study.area_ids, study.observed, study.expected, draws,
+                       thresholds, job.report.interval)
+    first = thresholds[0]
+    ranking = ranking_table(table, table[f"p_above_{threshold_label(first)}"], first)
+    areas = gpd.GeoDataFrame(table, geometry=study.areas.geometry.values, crs=study.areas.crs)
+    model_info = model_record(prepared, recipe, idata, verdict, approximate)
+    model_info["timings"] = dict(timings or {})
+    return FitResult(prepared=prepared, recipe=recipe, idata=idata, verdict=verdict,
+                     areas=areas, ranking=ranking, model_info=model_info,
+                     timings=dict(timings or {}))
+
+
+def model_record(prepared: PreparedStudy, recipe: Recipe, idata: az.InferenceData,
+                 verdict: Verdict, approximate: str | None = None) -> dict[str, Any]:
+    """The content of ``model.json``."""
+    job, study = prepared.job, prepared.study
+    interval = job.report.interval
+    return {
+        "job": job.description.name,
+        "title": job.description.title,
+        "period": job.description.period,
+        "source": job.description.source,
+        "created": utc_now(),
+        "approximate": approximate,
+        "recipe": recipe.to_dict(),
+        "priors": recipe.describe_priors(),
+        "standardisation": study.standardisation,
+        "interval": interval,
+        "thresholds": list(job.report.thresholds),
+        "suppress_below": job.report.suppress_below,
+        "fixed_effects": fixed_effects(idata, interval),
+        "hyperparameters": hyperparameters(idata, interval),
+        "diagnostics": verdict.to_dict(),
+        **model_comparison(idata),
+        "sampling": {"chains": job.sampling.chains, "draws": job.sampling.draws,
+                     "warmup": job.sampling.warmup},
+        "seed": job.sampling.seed,
+        "graph": {k: v for k, v in check_summary(prepared).items()
+                  if k in ("areas", "links", "islands", "components", "scaling_factors")},
+        "frequentist": prepared.references.to_dict(),
+        "package_versions": package_versions(),
+        "input_hashes": dict(study.input_hashes),
+        "warnings": list(study.warnings),
+    }
