@@ -1,7 +1,11 @@
 """What changed between two runs: areas whose published picture moved.
 
 An area is listed when, between the earlier and the later run,
-- its signal changed (higher / unclear / lower, the 0.8 / 0.2 rule), or
+- its signal changed (higher / unclear / lower, the 0.8 / 0.2 rule) and the
+  probability behind it moved by at least ``signal_margin`` (default 0.05:
+  about two Monte Carlo standard errors of the difference of two runs with an
+  effective sample size of 400 at p = 0.8, sqrt(2 * 0.8 * 0.2 / 400) = 0.028;
+  without it, areas sitting on a cut-off flip labels on sampler noise alone), or
 - an exceedance probability P(theta > t) moved by more than ``min_change``, or
 - its rank interval moved: the two intervals no longer overlap, or (when
   ``rank_shift`` is given) its median rank moved by at least that many places.
@@ -17,6 +21,7 @@ import numpy as np
 import pandas as pd
 
 from .history import EXCEEDANCE_PREFIX, HistoryStore, exceedance_columns
+from .job import threshold_label
 
 CHANGE_COLUMNS = ("area_id", "reasons", "signal_before", "signal_after")
 
@@ -27,14 +32,16 @@ class ChangeRules:
 
     min_change: float = 0.1
     rank_shift: float | None = None
+    signal_margin: float = 0.05
 
 
 @dataclass(frozen=True)
 class RunPair:
-    """The two runs being compared, earlier first."""
+    """The two runs being compared, earlier first; ``caution`` if one did not converge."""
 
     before: str
     after: str
+    caution: str | None = None
 
 
 class NothingToCompare(Exception):
@@ -46,11 +53,18 @@ def _fmt_rank(lower, upper) -> str:
 
 
 def area_change_reasons(before: pd.Series, after: pd.Series, thresholds: list[str],
-                        rules: ChangeRules) -> list[str]:
-    """Why one area (present in both runs) counts as changed; empty if it does not."""
+                        rules: ChangeRules, signal_column: str | None = None) -> list[str]:
+    """Why one area (present in both runs) counts as changed; empty if it does not.
+
+    ``signal_column`` is the exceedance column the signal is read from (the job's
+    first threshold).
+    """
     reasons = []
     if before["signal"] != after["signal"]:
-        reasons.append(f"signal {before['signal']} -> {after['signal']}")
+        moved = (abs(after[signal_column] - before[signal_column])
+                 if signal_column in before.index and signal_column in after.index else np.inf)
+        if pd.isna(moved) or moved >= rules.signal_margin:
+            reasons.append(f"signal {before['signal']} -> {after['signal']}")
     for column in thresholds:
         p0, p1 = before[column], after[column]
         if pd.notna(p0) and pd.notna(p1) and abs(p1 - p0) > rules.min_change:
@@ -68,8 +82,13 @@ def area_change_reasons(before: pd.Series, after: pd.Series, thresholds: list[st
 
 
 def compare_area_tables(before: pd.DataFrame, after: pd.DataFrame,
-                        rules: ChangeRules = ChangeRules()) -> pd.DataFrame:
-    """One row per changed area (plus areas present in only one run), largest move first."""
+                        rules: ChangeRules = ChangeRules(),
+                        signal_column: str | None = None) -> pd.DataFrame:
+    """One row per changed area (plus areas present in only one run), largest move first.
+
+    ``signal_column`` defaults to the first ``p_above_*`` column of ``after``.
+    """
+    signal_column = signal_column or next(iter(exceedance_columns(after)), None)
     before = before.assign(area_id=before["area_id"].astype(str)).set_index("area_id")
     after = after.assign(area_id=after["area_id"].astype(str)).set_index("area_id")
     thresholds = sorted(set(exceedance_columns(before.reset_index()))
@@ -84,7 +103,7 @@ def compare_area_tables(before: pd.DataFrame, after: pd.DataFrame,
         elif new is None:
             reasons = ["area no longer present"]
         else:
-            reasons = area_change_reasons(old, new, thresholds, rules)
+            reasons = area_change_reasons(old, new, thresholds, rules, signal_column)
         if reasons:
             rows.append(change_row(area_id, old, new, thresholds, reasons))
     columns = list(CHANGE_COLUMNS) + [f"{c}_{when}" for c in thresholds for when in ("before", "after")] \
@@ -93,7 +112,7 @@ def compare_area_tables(before: pd.DataFrame, after: pd.DataFrame,
            for when in ("before", "after")]
     table = pd.DataFrame(rows, columns=columns)
     if thresholds and len(table):
-        size = table[f"{thresholds[0]}_change"].abs().fillna(np.inf)
+        size = pd.to_numeric(table[f"{thresholds[0]}_change"], errors="coerce").abs().fillna(-np.inf)  # new/gone areas last
         table = table.iloc[np.argsort(-size.to_numpy(), kind="stable")].reset_index(drop=True)
     return table
 
@@ -134,20 +153,30 @@ def choose_runs(store: HistoryStore, job: str, since: str | None = None,
         since = earlier[0]
     elif store.get_run(since) is None:
         raise NothingToCompare(f"run {since!r} is not in the history store")
-    elif since not in converged:
-        raise NothingToCompare(f"run {since!r} did not converge; its results are not comparable")
-    return RunPair(before=since, after=current)
+    caution = None
+    if since not in converged:
+        caution = f"run {since} did not converge; differences may be sampler noise"
+    return RunPair(before=since, after=current, caution=caution)
 
 
 def changes_between(store: HistoryStore, pair: RunPair, rules: ChangeRules) -> pd.DataFrame:
-    return compare_area_tables(store.area_results(pair.before), store.area_results(pair.after), rules)
+    """Compare two stored runs; the signal is read from the later run's first threshold."""
+    thresholds = (store.get_run(pair.after) or {}).get("thresholds") or []
+    signal_column = f"{EXCEEDANCE_PREFIX}{threshold_label(float(thresholds[0]))}" if thresholds else None
+    return compare_area_tables(store.area_results(pair.before), store.area_results(pair.after),
+                               rules, signal_column)
 
 
 def format_changes(table: pd.DataFrame, pair: RunPair, rules: ChangeRules) -> str:
     """A readable table of changed areas."""
-    head = (f"Changes from run {pair.before} to run {pair.after} "
-            f"(exceedance moved by more than {rules.min_change:g}, signal changed, or rank "
-            f"interval moved{'' if rules.rank_shift is None else f' / median rank moved {rules.rank_shift:g}+'}):")
+    rank_rule = "rank intervals no longer overlap"
+    if rules.rank_shift is not None:
+        rank_rule += f" or median rank moved {rules.rank_shift:g}+ places"
+    head = (f"Changes from run {pair.before} to run {pair.after}\n"
+            f"  (exceedance moved by more than {rules.min_change:g}; signal changed with a move of "
+            f"{rules.signal_margin:g}+; {rank_rule})")
+    if pair.caution:
+        head += f"\n  CAUTION: {pair.caution}"
     if table.empty:
         return head + "\n  no area changed."
     lines = [head, f"  {len(table)} area(s) changed."]

@@ -46,6 +46,8 @@ def build_parser() -> argparse.ArgumentParser:
     rank.set_defaults(handler=command_rank)
 
     # Commands registered by the modules that own them (one line each).
+    __import__("smootharea.cli_nightly", fromlist=["register"]).register(commands)
+    __import__("smootharea.cli_report", fromlist=["register"]).register(commands)
     return parser
 
 
@@ -91,32 +93,13 @@ def command_check(arguments: argparse.Namespace) -> int:
 
 
 def command_run(arguments: argparse.Namespace) -> int:
-    from .problems import InputError
+    """Delegates to :func:`smootharea.runner.run_job` (run folder, lock, history, run.log)."""
     from .runner import run_job
     job = load_job_or_report(arguments.job)
     if job is None:
         return EXIT_INPUT
-    progress = False if arguments.quiet else None
-    started = time.perf_counter()
-    try:
-        result, paths = run_job(job, arguments.out, progress=progress)
-    except InputError as error:
-        print(error.render(), file=sys.stderr)
-        return EXIT_INPUT
-    except OSError as error:
-        print(f"Could not write the outputs: {error}", file=sys.stderr)
-        return EXIT_OUTPUT
-    minutes = (time.perf_counter() - started) / 60
-    verdict = result.verdict
-    flagged = int((result.areas["signal"] == "higher").sum())
-    out_dir = paths["areas.csv"].parent
-    if verdict.converged:
-        print(f"smootharea: {job.description.name}: converged; {flagged} area(s) flagged higher; "
-              f"{minutes:.1f} min; outputs in {out_dir}", file=sys.stderr)
-        return EXIT_OK
-    print(f"smootharea: {job.description.name}: NOT CONVERGED ({'; '.join(verdict.reasons)}); "
-          f"outputs written to {out_dir} but flagged; do not publish", file=sys.stderr)
-    return EXIT_NOT_CONVERGED
+    outcome = run_job(job, arguments.out, progress=False if arguments.quiet else None)
+    return outcome.exit_code
 
 
 def command_rank(arguments: argparse.Namespace) -> int:

@@ -149,3 +149,10 @@ def smr_limits(observed: ArrayLike, expected: ArrayLike,
     lower, upper = exact_poisson_limits(observed, level)
     expected = np.asarray(expected, dtype=float)
     return lower / expected, upper / expected
+
+
+def smr_with_limits(observed: ArrayLike, expected: ArrayLike,
+                    level: float = 0.95) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """SMR O_i / E_i with its exact (Garwood) interval at ``level``: (smr, lower, upper)."""
+    lower, upper = smr_limits(observed, expected, level)
+    return smr(observed, expected), lower, upper

@@ -43,11 +43,11 @@ UNCERTAINTY_PALETTE = "YlGnBu"   # ColorBrewer sequential, colour-blind safe
 # Ratio steps above 1; each has its reciprocal below 1, so classes are symmetric in log.
 RATIO_LADDER = (1.1, 1.25, 1.5, 2.0, 3.0, 5.0)
 EDGE_COLOUR = "#5a5a5a"
-HATCH_COLOUR = "#262626"
+HATCH_COLOUR = "#3a3a3a"
 MISSING_COLOUR = "#ffffff"
 NOTE_COLOUR = "#4d4d4d"
 WARNING_COLOUR = "#b30000"
-HATCH = "////"
+HATCH = "///"
 PRINT_DPI = 300
 
 
@@ -177,14 +177,14 @@ def exceedance_classes(probability: Sequence[float]) -> np.ndarray:
 # --- figure furniture ----------------------------------------------------------------
 
 def data_note(model: dict[str, Any], width: int = 150) -> str:
-    """One line: period, source of counts, model."""
+    """One line: period, model, source of counts (the source is shortened if the line is long)."""
     recipe = model.get("recipe") or {}
     parts = []
     if model.get("period"):
         parts.append(f"Period {model['period']}")
+    parts.append(f"model: {recipe.get('title') or recipe.get('name') or 'not recorded'}")
     if model.get("source"):
         parts.append(f"counts: {model['source']}")
-    parts.append(f"model: {recipe.get('title') or recipe.get('name') or 'unknown'}")
     return textwrap.shorten("; ".join(parts), width=width, placeholder=" ...")
 
 
@@ -200,26 +200,39 @@ def status_label(model: dict[str, Any]) -> str | None:
 
 def map_figure(title: str, model: dict[str, Any], panels: int = 1,
                aspect: float = 0.55) -> tuple[Figure, list, Any]:
-    """A figure with ``panels`` map axes, a legend column on the right, title and data note."""
+    """A figure with ``panels`` map axes, a legend column on the right, title and data note.
+
+    ``aspect`` is the map's height over its width; the figure height follows from it so the
+    frame hugs the map.
+    """
     width = 8.0 if panels == 1 else 11.0
-    height = max(3.2, width * 0.78 / panels * aspect + 1.3)
-    fig = Figure(figsize=(width, height), layout=None)
-    grid = fig.add_gridspec(1, panels + 1, width_ratios=[4] * panels + [1.6],
-                            left=0.02, right=0.98, top=0.84, bottom=0.09, wspace=0.04)
+    top_inches, bottom_inches = 0.95 if panels == 1 else 1.2, 0.45
+    ratios = [4.0] * panels + [1.7]
+    map_width = width * 0.96 * 4.0 / sum(ratios)
+    height = max(3.4 if panels == 1 else 4.6, map_width * aspect + top_inches + bottom_inches)
+    fig = Figure(figsize=(width, height))
+    grid = fig.add_gridspec(1, panels + 1, width_ratios=ratios, left=0.02, right=0.98,
+                            top=1 - top_inches / height, bottom=bottom_inches / height, wspace=0.04)
     axes = [fig.add_subplot(grid[0, i]) for i in range(panels)]
     legend_ax = fig.add_subplot(grid[0, panels])
     legend_ax.set_axis_off()
     for ax in axes:
         clean_frame(ax)
-    fig.text(0.02, 0.965, title, fontsize=13, fontweight="bold", va="top", ha="left")
+    fig.text(0.02, 1 - 0.12 / height, title, fontsize=13, fontweight="bold", va="top", ha="left")
     subtitle = model.get("title") or model.get("job") or ""
-    fig.text(0.02, 0.905, subtitle, fontsize=9.5, va="top", ha="left", color=NOTE_COLOUR)
-    fig.text(0.02, 0.025, data_note(model), fontsize=7, va="bottom", ha="left", color=NOTE_COLOUR)
+    fig.text(0.02, 1 - 0.42 / height, subtitle, fontsize=9.5, va="top", ha="left", color=NOTE_COLOUR)
+    fig.text(0.02, 0.1 / height, data_note(model), fontsize=7, va="bottom", ha="left",
+             color=NOTE_COLOUR)
     label = status_label(model)
     if label:
-        fig.text(0.98, 0.965, label, fontsize=9, fontweight="bold", va="top", ha="right",
-                 color="white", bbox={"facecolor": WARNING_COLOUR, "edgecolor": "none", "pad": 3})
+        stamp_status(fig, label, 1 - 0.42 / height)
     return fig, axes, legend_ax
+
+
+def stamp_status(fig: Figure, label: str, y: float) -> None:
+    """The not-converged / approximate warning, right-aligned on the subtitle line."""
+    fig.text(0.98, y, label, fontsize=9, fontweight="bold", va="top", ha="right", color="white",
+             bbox={"facecolor": WARNING_COLOUR, "edgecolor": "none", "pad": 3})
 
 
 def clean_frame(ax) -> None:
@@ -248,6 +261,7 @@ def hatch_suppressed(ax, areas: gpd.GeoDataFrame, suppressed: np.ndarray) -> Non
     if suppressed.any():
         areas[suppressed].plot(ax=ax, facecolor="none", edgecolor=HATCH_COLOUR, hatch=HATCH,
                                linewidth=0.0)
+        ax.collections[-1].set_hatch_linewidth(0.45)
 
 
 def suppression_patch(suppress_below: int) -> Patch:
@@ -270,6 +284,9 @@ def finish_map_axes(ax, areas: gpd.GeoDataFrame) -> None:
     pad_x, pad_y = (maxx - minx) * 0.02, (maxy - miny) * 0.02
     ax.set_xlim(minx - pad_x, maxx + pad_x)
     ax.set_ylim(miny - pad_y, maxy + pad_y)
+    ax.set_xlabel("")
+    ax.set_ylabel("")
+    ax.set_aspect(ax.get_aspect(), adjustable="box")  # the frame hugs the map
     clean_frame(ax)
 
 

@@ -7,7 +7,7 @@ from __future__ import annotations
 
 import time
 from dataclasses import dataclass, field
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import arviz as az
 import geopandas as gpd
@@ -19,13 +19,13 @@ from .frequentist import FrequentistReferences, fit_references
 from .graph import NeighbourGraph, build_graph
 from .job import Job, threshold_label
 from .load import load_study
-from .model import build_model
 from .provenance import package_versions, utc_now
-from .recipes import Recipe, load_recipe
-from .sampling import sample_posterior
 from .study import StudyData
 from .summarise import (area_table, fixed_effects, hyperparameters, model_comparison,
                         ranking_table, relative_risk_draws)
+
+if TYPE_CHECKING:  # PyMC is heavy; `check` never needs it.
+    from .recipes import Recipe
 
 
 @dataclass(frozen=True)
@@ -43,7 +43,7 @@ class FitResult:
     """Everything one estimation produced, before it is written anywhere."""
 
     prepared: PreparedStudy
-    recipe: Recipe
+    recipe: "Recipe"
     idata: az.InferenceData
     verdict: Verdict
     areas: gpd.GeoDataFrame
@@ -93,6 +93,10 @@ def check_summary(prepared: PreparedStudy) -> dict[str, Any]:
 
 def fit(job: Job, progress: bool | None = None, prepared: PreparedStudy | None = None) -> FitResult:
     """Run the whole estimation in memory and summarise it."""
+    from .model import build_model
+    from .recipes import load_recipe
+    from .sampling import sample_posterior
+
     timings: dict[str, float] = {}
     started = time.perf_counter()
     prepared = prepared or prepare(job)
@@ -108,7 +112,7 @@ def fit(job: Job, progress: bool | None = None, prepared: PreparedStudy | None =
     return summarise_fit(prepared, recipe, idata, verdict, timings)
 
 
-def summarise_fit(prepared: PreparedStudy, recipe: Recipe, idata: az.InferenceData,
+def summarise_fit(prepared: PreparedStudy, recipe: "Recipe", idata: az.InferenceData,
                   verdict: Verdict, timings: dict[str, float] | None = None,
                   approximate: str | None = None) -> FitResult:
     """Turn a posterior into the per-area table, the ranking and the model record."""
@@ -127,7 +131,7 @@ def summarise_fit(prepared: PreparedStudy, recipe: Recipe, idata: az.InferenceDa
                      timings=dict(timings or {}))
 
 
-def model_record(prepared: PreparedStudy, recipe: Recipe, idata: az.InferenceData,
+def model_record(prepared: PreparedStudy, recipe: "Recipe", idata: az.InferenceData,
                  verdict: Verdict, approximate: str | None = None) -> dict[str, Any]:
     """The content of ``model.json``."""
     job, study = prepared.job, prepared.study

@@ -20,7 +20,6 @@ last, and if it is unreachable the run folder still holds the full record for
 from __future__ import annotations
 
 import importlib
-import importlib.util
 import logging
 import os
 import secrets
@@ -106,11 +105,19 @@ def write_report_if_available(run_dir: Path) -> None:
 
     A report failure is a warning, not a failed run: the estimates are already on disk.
     """
-    if importlib.util.find_spec("smootharea.report") is None:
-        log.info("no report module installed; skipping the report")
-        return
     try:
         report = importlib.import_module("smootharea.report")
+    except ModuleNotFoundError as error:
+        if error.name == "smootharea.report":
+            log.info("no report module installed; skipping the report")
+            return
+        log.warning("the report module could not be loaded (%s); no report written", error)
+        return
+    except Exception as error:  # noqa: BLE001 - a broken report module must not fail the run
+        log.warning("the report module could not be loaded (%s: %s); no report written",
+                    type(error).__name__, error)
+        return
+    try:
         report.write_report(run_dir)
         log.info("report written")
     except Exception as error:  # noqa: BLE001 - any report failure must not fail the run
@@ -226,13 +233,17 @@ def run_logging(run_dir: Path, stream: TextIO | None) -> Iterator[None]:
 # --------------------------------------------------------------------------- the run
 
 def run_job(job: Job, out_dir: str | Path | None = None, progress: bool | None = None, *,
-            store_url: str | None = None, log_stream: TextIO | None = sys.stderr) -> RunOutcome:
+            store_url: str | None = None, log_stream: TextIO | None = None,
+            echo: bool = True) -> RunOutcome:
     """Fit ``job`` into a new run folder under ``out_dir`` (default: the job's output dir).
 
     Never raises for a failed run: the outcome's ``exit_code`` says what happened
     (0 converged; 1 input problem; 2 not converged, outputs written but ``latest``
     not moved; 3 output, store or sampler failure; 4 another run holds the lock).
+    The log goes to ``run.log`` in the run folder and, when ``echo``, to
+    ``log_stream`` (default: standard error).
     """
+    log_stream = (log_stream or sys.stderr) if echo else None
     out_root = Path(out_dir) if out_dir else job.output_dir
     started = datetime.now(timezone.utc)
     clock = time.perf_counter()
@@ -265,14 +276,15 @@ def run_job(job: Job, out_dir: str | Path | None = None, progress: bool | None =
                 write_run_record(run_dir, outcome.record)
                 log.info("run %s of job %s started in %s", run_id, name, run_dir)
                 estimate_and_publish(job, out_root, outcome, progress)
-            except BaseException as error:  # killed by signal/interrupt: close the record, re-raise
+            except Exception as error:  # noqa: BLE001 - e.g. run.json unwritable on a full disk
+                log.exception("run failed")
+                outcome.exit_code = EXIT_OUTPUT
+                outcome.status = STATUS_OUTPUT_FAILED if isinstance(error, OSError) else STATUS_FAILED
+                outcome.message = f"run failed: {type(error).__name__}: {error}"
+            except BaseException as error:  # Ctrl-C, SystemExit: close the record, then stop
                 outcome.status, outcome.message = STATUS_INTERRUPTED, f"interrupted: {error!r}"
                 finish_record(outcome, started, clock)
-                if not isinstance(error, Exception):
-                    raise
-                log.exception("unexpected failure")
-                outcome.status, outcome.exit_code = STATUS_FAILED, EXIT_OUTPUT
-                outcome.message = f"unexpected failure: {type(error).__name__}: {error}"
+                raise
             finish_record(outcome, started, clock)
             record_in_store(job, out_root, outcome, store_url)
             log_summary(outcome)

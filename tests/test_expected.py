@@ -5,7 +5,8 @@ import pytest
 from scipy import optimize, stats
 
 from smootharea.expected import (crude_expected, exact_poisson_limits, external_standardisation,
-                                 internal_standardisation, smr, smr_limits, stratum_rates)
+                                 internal_standardisation, smr, smr_limits, smr_with_limits,
+                                 stratum_rates)
 
 # Exact 95% limits for a Poisson count, from memory of standard handbook tables
 # (as quoted in METHODS.md section 1).
@@ -49,6 +50,9 @@ def test_smr_limits_are_count_limits_over_expected():
     # Handbook limits for O = 5 and O = 10 (above) divided by E.
     assert lower == pytest.approx([0.0, 1.624 / 4.0, 4.795 / 12.5], abs=1e-3)
     assert upper == pytest.approx([3.689 / 2.0, 11.668 / 4.0, 18.390 / 12.5], abs=1e-3)
+    ratio, low, high = smr_with_limits(observed, expected, 0.95)
+    assert ratio == pytest.approx([0.0, 1.25, 0.8])
+    assert low == pytest.approx(lower) and high == pytest.approx(upper)
 
 
 def test_level_outside_zero_one_is_refused():
