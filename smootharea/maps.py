@@ -394,7 +394,7 @@ def interval_width_map(run: RunFiles) -> Figure:
     hatch_suppressed(ax, run.areas, run.suppressed)
     finish_map_axes(ax, run.areas)
     colourbar_legend(fig, legend_ax, cmap, 0.0, high,
-                     f"Interval width\n(relative-risk units)")
+                     "Interval width\n(relative-risk units)")
     if run.suppressed.any():
         legend_ax.legend(handles=extra_patches(run), loc="lower left", frameon=False, fontsize=8)
     return fig

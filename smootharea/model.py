@@ -20,6 +20,7 @@ import numpy as np
 import pymc as pm
 import pytensor.tensor as pt
 import scipy.sparse as sp
+from scipy.sparse.linalg import eigsh
 
 from .graph import NeighbourGraph
 from .recipes import Prior, Recipe
@@ -30,6 +31,7 @@ from .study import StudyData
 DENSE_SPECTRUM_MAX = 2000
 _LANCZOS_PROBES = 48
 _LANCZOS_STEPS = 60
+_DEFLATED_EIGENPAIRS = 100
 
 
 @dataclass(frozen=True)
@@ -308,9 +310,9 @@ def mixing_spectrum(graph: NeighbourGraph) -> MixingSpectrum:
 
     Per component with n_c >= 2 areas, Laplacian eigenvalues 0 = l_0 < l_1 <= ...:
     gamma = 1 / (s_c l_k) for k >= 1. Exact (dense eigvalsh of that component) up to
-    DENSE_SPECTRUM_MAX areas; above that, stochastic Lanczos quadrature (Ubaru, Chen &
-    Saad 2017, SIAM J. Matrix Anal. Appl. 38) gives Ritz values and weights whose weighted
-    sums estimate the spectral sums (a few per cent Monte Carlo error).
+    DENSE_SPECTRUM_MAX areas; above that, the 100 smallest eigenvalues exactly and the rest
+    by stochastic Lanczos quadrature (Ubaru, Chen & Saad 2017, SIAM J. Matrix Anal. Appl.
+    38), whose weighted sums estimate the spectral sums (a few per cent Monte Carlo error).
     """
     gammas, weights, exact, null_count = [np.empty(0)], [np.empty(0)], True, 0
     adjacency = graph.adjacency
@@ -333,33 +335,48 @@ def mixing_spectrum(graph: NeighbourGraph) -> MixingSpectrum:
 
 
 def _lanczos_quadrature(laplacian: sp.csr_matrix, seed: int) -> tuple[np.ndarray, np.ndarray]:
-    """Ritz values and weights with sum_j w_j f(theta_j) ~ sum of f over the non-zero
-    eigenvalues (probes kept orthogonal to the constant null vector)."""
+    """Nodes and weights with sum_j w_j f(node_j) ~ sum of f over the non-zero eigenvalues.
+
+    The smallest eigenvalues (largest gamma, which dominate the distance for small phi) are
+    computed exactly by shift-invert Lanczos (scipy eigsh) and deflated; the rest of the
+    spectrum is estimated by stochastic Lanczos quadrature with Rademacher probes kept
+    orthogonal to the constant vector and the deflated eigenvectors.
+    """
     n = laplacian.shape[0]
+    n_exact = min(_DEFLATED_EIGENPAIRS, (n - 1) // 4)
+    values, vectors = eigsh(laplacian.tocsc(), k=n_exact + 1, sigma=-1e-3, which="LM")
+    order = np.argsort(values)
+    exact_values, exact_vectors = values[order][1:], vectors[:, order][:, 1:]
+    known = np.column_stack([np.full(n, 1 / np.sqrt(n)), exact_vectors])
+
+    def project(w: np.ndarray) -> np.ndarray:
+        return w - known @ (known.T @ w)
+
     rng = np.random.default_rng(seed)
-    nodes, weights = [], []
+    remaining = n - 1 - n_exact
+    steps = min(_LANCZOS_STEPS, remaining)
+    nodes, weights = [exact_values], [np.ones(n_exact)]
     for _ in range(_LANCZOS_PROBES):
-        probe = rng.choice([-1.0, 1.0], size=n)
-        probe -= probe.mean()
+        probe = project(project(rng.choice([-1.0, 1.0], size=n)))
         basis = [probe / np.linalg.norm(probe)]
         alphas, betas = [], []
-        for _step in range(min(_LANCZOS_STEPS, n - 1)):
+        while True:
             w = laplacian @ basis[-1]
             alphas.append(basis[-1] @ w)
-            w -= w.mean()
             stacked = np.asarray(basis)
-            w -= stacked.T @ (stacked @ w)   # full reorthogonalisation, twice
-            w -= stacked.T @ (stacked @ w)
+            for _twice in range(2):  # full reorthogonalisation
+                w = project(w)
+                w -= stacked.T @ (stacked @ w)
             norm = np.linalg.norm(w)
-            if norm < 1e-10 or len(alphas) == min(_LANCZOS_STEPS, n - 1):
+            if norm < 1e-10 or len(alphas) == steps:
                 break
             betas.append(norm)
             basis.append(w / norm)
         off = betas[:len(alphas) - 1]
-        theta, vectors = np.linalg.eigh(np.diag(alphas) + np.diag(off, 1) + np.diag(off, -1))
+        theta, ritz = np.linalg.eigh(np.diag(alphas) + np.diag(off, 1) + np.diag(off, -1))
         keep = theta > 1e-12
         nodes.append(theta[keep])
-        weights.append(vectors[0, keep] ** 2 * (n - 1) / _LANCZOS_PROBES)
+        weights.append(ritz[0, keep] ** 2 * remaining / _LANCZOS_PROBES)
     return np.concatenate(nodes), np.concatenate(weights)
 
 
@@ -428,8 +445,8 @@ def pc_mixing_log_density(phi, spectrum: MixingSpectrum, rate: float) -> np.ndar
     return np.log(rate) - rate * distance + log_slope
 
 
-_GRID = np.concatenate([np.linspace(-30.0, 30.0, 241), np.geomspace(31.0, 5000.0, 60)])
-_NEWTON_STEPS = 6
+_GRID = np.concatenate([np.linspace(-30.0, 30.0, 1201), np.geomspace(30.5, 5000.0, 200)])
+_NEWTON_STEPS = 3
 
 
 def logit_mixing_from_distance(distance, spectrum: MixingSpectrum):
@@ -462,5 +479,6 @@ def describe_mixing_spectrum(spectrum: MixingSpectrum) -> str:
     if spectrum.exact:
         return "PC prior for phi: exact eigenvalues of every component's scaled ICAR precision"
     return ("PC prior for phi: spectrum of components above "
-            f"{DENSE_SPECTRUM_MAX} areas estimated by stochastic Lanczos quadrature "
-            f"({_LANCZOS_PROBES} probes x {_LANCZOS_STEPS} steps)")
+            f"{DENSE_SPECTRUM_MAX} areas: {_DEFLATED_EIGENPAIRS} smallest eigenvalues exact, "
+            f"the rest by stochastic Lanczos quadrature ({_LANCZOS_PROBES} probes x "
+            f"{_LANCZOS_STEPS} steps)")

@@ -156,10 +156,20 @@ def model_record(prepared: PreparedStudy, recipe: "Recipe", idata: az.InferenceD
         "sampling": {"chains": job.sampling.chains, "draws": job.sampling.draws,
                      "warmup": job.sampling.warmup},
         "seed": job.sampling.seed,
-        "graph": {k: v for k, v in check_summary(prepared).items()
-                  if k in ("areas", "links", "islands", "components", "scaling_factors")},
+        "graph": graph_record(prepared),
         "frequentist": prepared.references.to_dict(),
         "package_versions": package_versions(),
         "input_hashes": dict(study.input_hashes),
         "warnings": list(study.warnings),
     }
+
+
+def graph_record(prepared: PreparedStudy) -> dict[str, Any]:
+    """Graph summary plus the links themselves (as id pairs), so reports can reuse the graph."""
+    summary = {k: v for k, v in check_summary(prepared).items()
+               if k in ("areas", "links", "islands", "components", "scaling_factors")}
+    graph = prepared.graph
+    ids = graph.area_ids
+    summary["rule"] = prepared.job.neighbours.rule
+    summary["edges"] = [[ids[i], ids[j]] for i, j in graph.edges.tolist()]
+    return summary

@@ -21,8 +21,9 @@ from .maps import (DEFAULT_PALETTE, NOTE_COLOUR, RunFiles, data_note, exceedance
 from .summarise import SIGNAL_LOWER, SIGNAL_UPPER
 
 FUNNEL_COVERAGES = (0.95, 0.998)
-HYPERPARAMETERS = ("sigma", "phi", "sigma_spatial", "sigma_unstructured")
-CHAIN_VARIABLES = ("intercept", "beta", "sigma", "phi", "sigma_spatial", "sigma_unstructured")
+HYPERPARAMETERS = ("sigma", "phi", "sigma_spatial", "sigma_unstructured", "sigma_icar")
+CHAIN_VARIABLES = ("intercept", "beta", "sigma", "phi", "sigma_spatial", "sigma_unstructured",
+                   "sigma_icar")
 LABELLED_AREAS_MAX = 60
 
 
@@ -250,7 +251,8 @@ def hyperparameter_plot(run: RunFiles, palette: str = DEFAULT_PALETTE) -> Figure
     descriptions = {"sigma": "sigma: SD of the area effects (log scale)",
                     "phi": "phi: share of that variance that is spatial",
                     "sigma_spatial": "SD of the spatial (ICAR) effect",
-                    "sigma_unstructured": "SD of the unstructured effect"}
+                    "sigma_unstructured": "SD of the unstructured effect",
+                    "sigma_icar": "SD of the ICAR effect"}
     fig, axes = plot_figure("Posterior of the model's variance parameters", run.model,
                             width=4.2 * len(names) + 1, height=4.2, cols=len(names))
     low, high = (1 - run.interval) / 2, (1 + run.interval) / 2
@@ -261,7 +263,7 @@ def hyperparameter_plot(run: RunFiles, palette: str = DEFAULT_PALETTE) -> Figure
         for q in np.quantile(draws, [low, high]):
             ax.axvline(q, color="black", linestyle="--", linewidth=0.8)
         ax.axvline(np.median(draws), color="black", linewidth=1.0)
-        ax.set_xlabel(descriptions[name], fontsize=8.5)
+        ax.set_xlabel(descriptions.get(name, name), fontsize=8.5)
         ax.set_yticks([])
         light_axes(ax)
         ax.set_title(f"median {np.median(draws):.3g}, {run.interval * 100:g}% interval "

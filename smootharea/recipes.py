@@ -136,9 +136,11 @@ def _describe(parameter: str, prior: Prior) -> str:
     if prior.kind == "pc_mixing":
         return (f"{parameter}: penalised-complexity prior for the spatial share "
                 f"(Riebler et al. 2016), P({parameter} < {p['threshold']:g}) = "
-                f"{p['probability_below']:.4g}; distance from the exchangeable model computed "
-                "from the eigenvalues of each component's scaled ICAR precision (components "
-                "above 2000 areas: stochastic Lanczos quadrature estimate of the spectrum)")
+                f"{p['probability_below']:.4g}, i.e. an exponential prior on the distance "
+                "d(phi) from the exchangeable model; d(phi) from the eigenvalues of each "
+                "component's scaled ICAR precision (exact up to 2000 areas per component; "
+                "above that the 100 smallest exact and the rest estimated by stochastic "
+                "Lanczos quadrature)")
     if prior.kind == "gamma":
         return (f"{parameter}: Gamma(shape {p['shape']:g}, rate {p['rate']:g}), "
                 f"prior mean {p['shape'] / p['rate']:.4g}, fixed hyperparameters")

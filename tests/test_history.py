@@ -8,7 +8,6 @@ starts with pg_ctl when Debian's postgresql package is installed.
 from __future__ import annotations
 
 import glob
-import json
 import os
 import secrets
 import shutil

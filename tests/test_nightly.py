@@ -13,9 +13,7 @@ Two kinds of check:
 from __future__ import annotations
 
 import errno
-import json
 import os
-import shutil
 import signal
 import subprocess
 import sys

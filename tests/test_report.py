@@ -217,6 +217,7 @@ def true_counts(run_dir: Path) -> pd.Series:
 # --- the tests -------------------------------------------------------------------------
 
 @needs_chromium
+@pytest.mark.browser
 def test_report_opens_offline_in_chromium_with_flagged_table_and_cautions(nc_run_dir, tmp_path):
     page = nc_run_dir / "report.html"
     screenshot = tmp_path / "report.png"
