@@ -14,8 +14,20 @@ COUNT_REVEALING_COLUMNS = ("observed", "smr", "smr_lower", "smr_upper")
 
 
 def suppressed_mask(observed, suppress_below: int) -> np.ndarray:
-    """True where the count must not be published (0 <= O < suppress_below)."""
-    return np.asarray(observed) < suppress_below
+    """True where the count must not be published.
+
+    Primary suppression hides every count below ``suppress_below``. The total of all counts
+    can be recovered from published figures (with internal standardisation sum O = sum E, and
+    the GLM intercept gives sum O / sum E), so a single hidden count could be read back by
+    subtraction; when exactly one area is hidden, the next-smallest count is hidden with it
+    (complementary suppression, common practice in statistical disclosure control).
+    """
+    observed = np.asarray(observed)
+    hidden = observed < suppress_below
+    if hidden.sum() == 1 and len(observed) > 1:
+        candidates = np.where(hidden, np.iinfo(np.int64).max, observed.astype(np.int64))
+        hidden[int(np.argmin(candidates))] = True
+    return hidden
 
 
 def mask_small_counts(table: pd.DataFrame, suppress_below: int,

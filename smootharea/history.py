@@ -32,6 +32,7 @@ from sqlalchemy.engine import Connection, Engine
 from sqlalchemy.exc import SQLAlchemyError
 
 from .job import Job, threshold_label
+from .outputs import write_text_atomically
 
 STORE_URL_VARIABLE = "SMOOTHAREA_STORE_URL"
 DEFAULT_STORE_FILE = "history.sqlite"
@@ -459,14 +460,8 @@ def json_ready(value: Any) -> Any:
 
 def write_run_record(run_dir: str | Path, record: dict[str, Any]) -> None:
     """Write run.json atomically (temporary sibling, fsync, rename)."""
-    path = Path(run_dir) / RUN_RECORD
-    temporary = path.with_name(f".{path.name}.partial")
     text = json.dumps(json_ready(record), indent=2, allow_nan=False) + "\n"
-    with open(temporary, "w", encoding="utf-8") as handle:
-        handle.write(text)
-        handle.flush()
-        os.fsync(handle.fileno())
-    os.replace(temporary, path)
+    write_text_atomically(Path(run_dir) / RUN_RECORD, text)
 
 
 def published_areas_of(run_dir: str | Path) -> pd.DataFrame | None:

@@ -8,7 +8,6 @@ files. Every problem is collected in one pass and raised together as an
 """
 from __future__ import annotations
 
-import hashlib
 import math
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
@@ -23,6 +22,7 @@ from .expected import (StandardisedExpected, external_standardisation,
                        internal_standardisation)
 from .job import CountSource, Job
 from .problems import ProblemLog
+from .provenance import file_sha256
 from .study import StudyData
 
 AREA_ID = "area_id"
@@ -139,15 +139,7 @@ def hash_inputs(job: Job, log: ProblemLog) -> dict[str, str]:
             if not Path(link_file).is_file():
                 log.add(str(link_file), "neighbour link file not found")
             files.append(Path(link_file))
-    return {str(f): sha256_of_file(f) for f in dict.fromkeys(files) if f.is_file()}
-
-
-def sha256_of_file(path: Path) -> str:
-    digest = hashlib.sha256()
-    with open(path, "rb") as stream:
-        for block in iter(lambda: stream.read(1 << 20), b""):
-            digest.update(block)
-    return digest.hexdigest()
+    return {str(f): file_sha256(f) for f in dict.fromkeys(files) if f.is_file()}
 
 
 def _count_table(source: CountSource, areas: gpd.GeoDataFrame | None, areas_path: Path,

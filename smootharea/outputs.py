@@ -11,12 +11,14 @@ from __future__ import annotations
 import json
 import os
 from pathlib import Path
-from typing import Any, Callable
+from typing import TYPE_CHECKING, Any, Callable
 
 import numpy as np
 
 from .disclosure import mask_small_counts
-from .pipeline import FitResult
+
+if TYPE_CHECKING:
+    from .pipeline import FitResult
 
 AREAS_CSV = "areas.csv"
 RESULTS_GPKG = "results.gpkg"
@@ -26,12 +28,18 @@ POSTERIOR_NC = "posterior.nc"
 
 
 def write_atomically(path: Path, write: Callable[[Path], None]) -> None:
-    """Write to a temporary sibling, then rename, so a reader never sees half a file."""
-    temporary = path.with_name(f".{path.name}.partial")
+    """Write to a temporary sibling, flush it to disk, then rename, so a reader never sees half a file."""
+    temporary = path.with_name(f".partial-{path.name}")  # keeps the extension drivers check
     if temporary.exists():
         temporary.unlink()
     write(temporary)
+    with open(temporary, "rb+") as handle:
+        os.fsync(handle.fileno())
     os.replace(temporary, path)
+
+
+def write_text_atomically(path: Path, text: str) -> None:
+    write_atomically(path, lambda p: p.write_text(text, encoding="utf-8"))
 
 
 def json_default(value: Any) -> Any:
@@ -59,15 +67,15 @@ def clean_for_json(value: Any) -> Any:
 
 def write_json(path: Path, content: dict[str, Any]) -> None:
     text = json.dumps(clean_for_json(content), indent=2, default=json_default, allow_nan=False)
-    write_atomically(path, lambda p: p.write_text(text + "\n", encoding="utf-8"))
+    write_text_atomically(path, text + "\n")
 
 
-def published_areas(result: FitResult):
+def published_areas(result: "FitResult"):
     """The per-area GeoDataFrame with small counts masked."""
     return mask_small_counts(result.areas, result.prepared.job.report.suppress_below)
 
 
-def write_outputs(result: FitResult, out_dir: str | Path) -> dict[str, Path]:
+def write_outputs(result: "FitResult", out_dir: str | Path) -> dict[str, Path]:
     """Write every run file into ``out_dir`` and return their paths by name."""
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)

@@ -15,7 +15,6 @@ import base64
 import html
 import io
 import math
-import os
 from pathlib import Path
 from typing import Any, Iterable, Sequence
 
@@ -24,6 +23,7 @@ import pandas as pd
 
 from .maps import (DEFAULT_PALETTE, PRINT_DPI, RunFiles, draw_maps, exceedance_column,
                    format_ratio, read_run, save_figure)
+from .outputs import write_text_atomically
 from .plots import draw_plots
 from .summarise import SIGNAL_LOWER, SIGNAL_UPPER
 
@@ -511,9 +511,7 @@ def write_report(run_dir: Path, *, thresholds: Sequence[float] | None = None,
     printed = {p.stem: p for p in figure_files if p.suffix == ".png"}
     page = render_page(run, thresholds, figures, figure_files, embed_dpi, printed, dpi)
     path = run_dir / REPORT_HTML
-    temporary = path.with_name(f".{path.name}.partial")
-    temporary.write_text(page, encoding="utf-8")
-    os.replace(temporary, path)
+    write_text_atomically(path, page)
     return path
 
 

@@ -12,7 +12,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
-from scipy.stats import spearmanr
+from scipy.stats import pearsonr, spearmanr
 
 try:
     from smootharea.frequentist import marshall_global_eb
@@ -63,12 +63,13 @@ def test_bym2_recovers_the_simulated_risks_of_the_demo_region():
 @pytest.mark.slow
 def test_bym2_agrees_with_marshall_global_empirical_bayes_on_north_carolina():
     # Both shrink unstable SMRs of small counties; BYM2 also borrows from neighbours, so the
-    # agreement is broad (rank correlation), not exact. Marshall 1991 via our frequentist module.
+    # agreement is broad, not exact. Marshall 1991 via our frequentist module. The issue's
+    # criterion is a (Pearson) correlation above 0.9; measured 0.911 on a 4 x 1000 run.
     study, idata = _fit(REGIONS / "north_carolina" / "job.toml")
     smoothed = idata.posterior["relative_risk"].mean(("chain", "draw")).values
     empirical_bayes = marshall_global_eb(study.observed, study.expected).estimate
-    correlation = spearmanr(smoothed, empirical_bayes).statistic
-    assert correlation > 0.8, correlation
+    assert pearsonr(smoothed, empirical_bayes).statistic > 0.9
+    assert spearmanr(smoothed, empirical_bayes).statistic > 0.8
     # Both sit closer to each other than either sits to the raw SMRs.
     smr = study.observed / study.expected
     assert np.mean(np.abs(smoothed - empirical_bayes)) < np.mean(np.abs(smr - empirical_bayes))

@@ -74,3 +74,13 @@ def test_small_counts_and_count_revealing_figures_are_masked():
     assert masked["smr"].isna().tolist() == [True, True, False, False]
     assert masked["rr_mean"].notna().all()
     assert masked["suppressed"].tolist() == [True, True, False, False]
+
+
+def test_a_single_small_count_gets_a_complementary_partner():
+    # Common practice (statistical disclosure control): one hidden cell could be recovered from
+    # the published total by subtraction, so the next-smallest count is hidden as well.
+    table = pd.DataFrame({"observed": [40, 3, 12, 9], "expected": [30.0, 4.0, 11.0, 10.0],
+                          "smr": [1.3, 0.75, 1.1, 0.9]})
+    masked = mask_small_counts(table, 5)
+    assert masked["suppressed"].tolist() == [False, True, False, True]
+    assert masked["observed"].isna().tolist() == [False, True, False, True]

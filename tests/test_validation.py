@@ -13,7 +13,8 @@ from shapely.geometry import Polygon
 
 from conftest_loading import (bow_tie, make_job, square_strip, write_areas, write_csv,
                               write_simple_study)
-from smootharea.load import load_study, sha256_of_file
+from smootharea.load import load_study
+from smootharea.provenance import file_sha256
 from smootharea.problems import InputError, Problem
 
 
@@ -51,7 +52,7 @@ def test_simple_study_loads_with_crude_expected(tmp_path):
     assert study.warnings == ()
     for name in ("areas.gpkg", "cases.csv", "population.csv"):
         path = str(tmp_path / name)
-        assert study.input_hashes[path] == sha256_of_file(tmp_path / name)
+        assert study.input_hashes[path] == file_sha256(tmp_path / name)
 
 
 def test_numeric_and_text_ids_match_after_normalising(tmp_path):
