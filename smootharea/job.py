@@ -24,6 +24,7 @@ class AreasSource:
     path: Path
     id: str
     layer: str | None = None
+    name: str | None = None
 
 
 @dataclass(frozen=True)
@@ -153,7 +154,8 @@ def parse_job(raw: dict[str, Any], base_dir: Path, file: Path | None = None) -> 
     areas_raw = raw.get("areas", {})
     areas_id = required("areas", "id") or "area_id"
     areas = AreasSource(path=resolve(required("areas", "path")) or Path("."),
-                        id=str(areas_id), layer=areas_raw.get("layer"))
+                        id=str(areas_id), layer=areas_raw.get("layer"),
+                        name=areas_raw.get("name"))
 
     def count_source(table: str) -> CountSource | None:
         if table not in raw:

@@ -26,6 +26,7 @@ from .provenance import file_sha256
 from .study import StudyData
 
 AREA_ID = "area_id"
+AREA_NAME = "area_name"
 SHAPEFILE_SIDECARS = (".dbf", ".shx", ".prj", ".cpg")
 TABLE_SUFFIXES = {".csv": ",", ".txt": ",", ".tsv": "\t"}
 PARQUET_SUFFIXES = (".parquet", ".pq")
@@ -77,7 +78,7 @@ def load_study(job: Job) -> StudyData:
         rates = RateTable(read_table(source.path, log), str(source.path),
                           source.strata, source.rate)
     return validate_tables(areas, areas_source=str(job.areas.path), area_id=job.areas.id,
-                           cases=cases, population=population,
+                           name_column=job.areas.name, cases=cases, population=population,
                            expected_column=job.expected_column, reference_rates=rates,
                            covariates=job.model.covariates, input_hashes=hashes, log=log)
 
@@ -159,7 +160,7 @@ def _layer_note(layer: str | None) -> str:
 # --------------------------------------------------------------------------- validation
 
 def validate_tables(areas: gpd.GeoDataFrame | None, *, areas_source: str, area_id: str,
-                    cases: CountTable, population: CountTable | None = None,
+                    cases: CountTable, name_column: str | None = None, population: CountTable | None = None,
                     expected_column: str | None = None,
                     reference_rates: RateTable | None = None,
                     covariates: Sequence[str] = (),
@@ -175,7 +176,7 @@ def validate_tables(areas: gpd.GeoDataFrame | None, *, areas_source: str, area_i
     log = log if log is not None else ProblemLog()
     if population is None and expected_column is None:
         log.add(cases.source, "give population counts or an expected-count column")
-    area_frame = check_areas(areas, areas_source, area_id, log)
+    area_frame = check_areas(areas, areas_source, area_id, log, name_column)
     cases_long = check_count_table(cases, "cases", log)
     population_long = (check_count_table(population, "population", log)
                        if population is not None else None)
@@ -281,10 +282,11 @@ def _columns_note(frame: pd.DataFrame) -> str:
 
 
 def check_areas(areas: gpd.GeoDataFrame | None, source: str, id_column: str,
-                log: ProblemLog) -> gpd.GeoDataFrame | None:
+                log: ProblemLog, name_column: str | None = None) -> gpd.GeoDataFrame | None:
     """Ids present and unique, geometry non-empty (invalid shapes repaired), CRS present.
 
-    Returns the layer reduced to ``area_id`` (str) and geometry, in layer order.
+    Returns the layer reduced to ``area_id`` (str), ``area_name`` (when a name column is
+    given) and geometry, in layer order.
     """
     if areas is None:
         return None
@@ -314,8 +316,15 @@ def check_areas(areas: gpd.GeoDataFrame | None, source: str, id_column: str,
         log.warn(f"{source}: the areas layer has no coordinate reference system (CRS); "
                  "neighbours are unaffected but maps carry no scale or projection")
     keep = ids.notna().to_numpy()
-    return gpd.GeoDataFrame({AREA_ID: ids[keep].astype(str).to_numpy()},
-                            geometry=geometry[keep].to_numpy(), crs=areas.crs)
+    columns = {AREA_ID: ids[keep].astype(str).to_numpy()}
+    if name_column is not None:
+        if name_column in areas.columns:
+            names = areas[name_column].reset_index(drop=True)[keep]
+            columns[AREA_NAME] = names.fillna("").astype(str).to_numpy()
+        else:
+            log.add(source, f"area name column not found in the areas layer; {_columns_note(areas)}",
+                    name_column)
+    return gpd.GeoDataFrame(columns, geometry=geometry[keep].to_numpy(), crs=areas.crs)
 
 
 def _id_list(ids: Iterable[str], limit: int = 20) -> str:

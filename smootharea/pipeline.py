@@ -91,11 +91,15 @@ def check_summary(prepared: PreparedStudy) -> dict[str, Any]:
     }
 
 
-def fit(job: Job, progress: bool | None = None, prepared: PreparedStudy | None = None) -> FitResult:
-    """Run the whole estimation in memory and summarise it."""
-    from .model import build_model
+def fit(job: Job, progress: bool | None = None, prepared: PreparedStudy | None = None,
+        quick: bool = False) -> FitResult:
+    """Run the whole estimation in memory and summarise it.
+
+    ``quick``: the approximate preview of :mod:`smootharea.quick` (Laplace approximation,
+    hyperparameters on a grid) instead of the sampler; the result carries the label in
+    ``model_info["approximate"]`` and an approximation record in place of a verdict.
+    """
     from .recipes import load_recipe
-    from .sampling import sample_posterior
 
     timings: dict[str, float] = {}
     started = time.perf_counter()
@@ -104,6 +108,17 @@ def fit(job: Job, progress: bool | None = None, prepared: PreparedStudy | None =
     recipe = load_recipe(job.model.recipe, base_dir=job.base_dir)
 
     started = time.perf_counter()
+    if quick:
+        from .quick import approximation_verdict, fit_quick
+        idata = fit_quick(prepared, recipe, job.sampling)
+        timings["approximation_seconds"] = time.perf_counter() - started
+        result = summarise_fit(prepared, recipe, idata, approximation_verdict(idata), timings,
+                               approximate=str(idata.attrs["approximate"]))
+        result.ranking["estimate"] = "APPROXIMATE"  # ranking.csv travels without model.json
+        return result
+
+    from .model import build_model
+    from .sampling import sample_posterior
     model = build_model(prepared.study, prepared.graph, recipe)
     idata = sample_posterior(model, job.sampling, recipe, progress=progress)
     timings["sampling_seconds"] = time.perf_counter() - started
@@ -122,6 +137,8 @@ def summarise_fit(prepared: PreparedStudy, recipe: "Recipe", idata: az.Inference
     table = area_table(study.area_ids, study.observed, study.expected, draws,
                        thresholds, job.report.interval)
     first = thresholds[0]
+    if "area_name" in study.areas:
+        table["area_name"] = study.areas["area_name"].to_numpy()
     ranking = ranking_table(table, table[f"p_above_{threshold_label(first)}"], first)
     areas = gpd.GeoDataFrame(table, geometry=study.areas.geometry.values, crs=study.areas.crs)
     model_info = model_record(prepared, recipe, idata, verdict, approximate)

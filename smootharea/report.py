@@ -196,6 +196,14 @@ def count_cells(row: pd.Series) -> tuple[str, str]:
     return str(int(row["observed"])), number(row.get("smr"))
 
 
+def area_label(row: pd.Series) -> str:
+    """The area's id, with its name when the job gave a name column."""
+    name = row.get("area_name")
+    if isinstance(name, str) and name:
+        return f"{esc(name)} <span class=\"note\">({esc(row['area_id'])})</span>"
+    return esc(row["area_id"])
+
+
 def flagged_table(run: RunFiles, thresholds: Sequence[float]) -> str:
     """Areas with P(RR > first threshold) above 0.8, most certain first."""
     first = thresholds[0]
@@ -210,7 +218,7 @@ def flagged_table(run: RunFiles, thresholds: Sequence[float]) -> str:
     rows = []
     for _, row in flagged.iterrows():
         observed, smr = count_cells(row)
-        rows.append([esc(row["area_id"]), number(row["rr_median"]),
+        rows.append([area_label(row), number(row["rr_median"]),
                      interval_text(row["rr_lower"], row["rr_upper"])]
                     + [number(row[columns[t]]) for t in thresholds]
                     + [number(row["rank_median"], 0),
@@ -234,7 +242,7 @@ def all_areas_table(run: RunFiles, thresholds: Sequence[float]) -> str:
     rows = []
     for _, row in run.areas.sort_values("rr_median", ascending=False, kind="stable").iterrows():
         observed, smr = count_cells(row)
-        rows.append([esc(row["area_id"]), number(row["expected"], 1), observed, smr,
+        rows.append([area_label(row), number(row["expected"], 1), observed, smr,
                      number(row["rr_median"]), interval_text(row["rr_lower"], row["rr_upper"])]
                     + [number(row[columns[t]]) for t in thresholds]
                     + [f"{int(row['rank_lower'])} to {int(row['rank_upper'])}",

@@ -17,7 +17,8 @@ class StudyData:
 
     Attributes:
         area_ids: area identifiers as strings, unique, in areas-layer order.
-        areas: GeoDataFrame with an ``area_id`` column (str) and valid geometry, same order.
+        areas: GeoDataFrame with an ``area_id`` column (str), ``area_name`` when the job names
+            a name column, and valid geometry, same order.
         observed: observed case counts O_i (int64, >= 0).
         expected: expected counts E_i (float64, > 0).
         population: persons or person-time per area, or None when E was supplied.

@@ -93,7 +93,8 @@ def ranking_table(table: pd.DataFrame, probability: np.ndarray | pd.Series,
     ranked = ranked.sort_values(["p_above", "rr_median"], ascending=[False, False], kind="stable")
     ranked.insert(0, "position", np.arange(1, len(ranked) + 1))
     ranked["threshold"] = threshold
-    columns = ["position", "area_id", "threshold", "p_above", "rr_median", "rr_lower",
+    names = ["area_name"] if "area_name" in ranked else []
+    columns = ["position", "area_id", *names, "threshold", "p_above", "rr_median", "rr_lower",
                "rr_upper", "rank_median", "rank_lower", "rank_upper", "signal"]
     return ranked[columns].reset_index(drop=True)
 

@@ -275,6 +275,18 @@ def test_id_column_missing_names_the_columns_present(tmp_path):
     assert "code" in problem.message
 
 
+def test_area_names_are_carried_and_a_missing_name_column_is_named(tmp_path):
+    write_areas(tmp_path, square_strip(["A", "B", "C"], label=["Aldmoor", "Brenfell", "Cairnby"]))
+    write_csv(tmp_path, "cases.csv", [{"code": i, "cases": 2} for i in "ABC"])
+    write_csv(tmp_path, "population.csv", [{"code": i, "persons": 500} for i in "ABC"])
+    job = make_job(tmp_path)
+    named = replace(job, areas=replace(job.areas, name="label"))
+    assert list(load_study(named).areas["area_name"]) == ["Aldmoor", "Brenfell", "Cairnby"]
+    wrong = replace(job, areas=replace(job.areas, name="title"))
+    problem = find(problems_of(wrong), "areas.gpkg", "title", None, "area name column not found")
+    assert "label" in problem.message
+
+
 def test_count_column_missing_names_the_columns_present(tmp_path):
     write_simple_study(tmp_path)
     job = make_job(tmp_path, population={"path": "population.csv", "count": "pop"})
