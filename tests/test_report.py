@@ -233,7 +233,13 @@ def test_report_opens_offline_in_chromium_with_flagged_table_and_cautions(nc_run
     # The flagged table lists exactly the areas with P(RR > 1) > 0.8 in areas.csv.
     table = pd.read_csv(nc_run_dir / "areas.csv", dtype={"area_id": str})
     flagged = set(table.loc[table["p_above_1"] > 0.8, "area_id"])
-    assert {row[0] for row in facts["flaggedRows"] if len(row) > 1} == flagged
+    # Cells read "Name (id)" when the job names a name column, else just the id.
+    shown = {re.sub(r"^.*\((.+)\)$", r"\1", row[0].strip())
+             for row in facts["flaggedRows"] if len(row) > 1}
+    assert shown == flagged
+    names = dict(zip(table["area_id"], table["area_name"]))
+    assert all(row[0].startswith(names[re.sub(r"^.*\((.+)\)$", r"\1", row[0].strip())])
+               for row in facts["flaggedRows"] if len(row) > 1)
     assert "P(RR > 1)" in facts["flaggedHeaders"]
     assert any("rank interval" in h for h in facts["flaggedHeaders"])
     cautions = facts["cautions"].lower()
@@ -279,7 +285,7 @@ def test_no_small_count_in_report_tables_or_published_files(nc_run_dir):
                 continue
             cell = row[observed_at]
             assert cell == NOT_SHOWN or int(cell) >= suppress_below
-            if row[0] in small:
+            if re.sub(r"^.*\((.+)\)$", r"\1", row[0].strip()) in small:  # "Name (id)" or "id"
                 assert row[observed_at] == NOT_SHOWN and row[smr_at] == NOT_SHOWN
                 checked_rows += 1
     assert checked_rows >= len(small)  # every small area appears in the all-areas table
