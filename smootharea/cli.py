@@ -36,6 +36,9 @@ def build_parser() -> argparse.ArgumentParser:
     run.add_argument("job", type=Path, help="job file (TOML)")
     run.add_argument("--out", type=Path, default=None, help="output folder (default: [output] dir)")
     run.add_argument("--quiet", action="store_true", help="no progress bar")
+    run.add_argument("--quick", action="store_true",
+                     help="approximate preview in seconds (Laplace approximation, no sampler); "
+                          "every output is labelled APPROXIMATE and 'latest' is not moved")
     run.set_defaults(handler=command_run)
 
     rank = commands.add_parser("rank", help="order areas by exceedance probability")
@@ -98,7 +101,10 @@ def command_run(arguments: argparse.Namespace) -> int:
     job = load_job_or_report(arguments.job)
     if job is None:
         return EXIT_INPUT
-    outcome = run_job(job, arguments.out, progress=False if arguments.quiet else None)
+    quick = bool(getattr(arguments, "quick", False))
+    outcome = run_job(job, arguments.out, progress=False if arguments.quiet else None, quick=quick)
+    if quick and outcome.status == "approximate":
+        print(outcome.message)
     return outcome.exit_code
 
 

@@ -191,7 +191,7 @@ def data_note(model: dict[str, Any], width: int = 150) -> str:
 def status_label(model: dict[str, Any]) -> str | None:
     """A warning stamped on figures of runs that did not converge or are approximate."""
     labels = []
-    if not (model.get("diagnostics") or {}).get("converged", True):
+    if (model.get("diagnostics") or {}).get("converged") is False:  # None: approximate run
         labels.append("NOT CONVERGED - do not publish")
     if model.get("approximate"):
         labels.append(f"APPROXIMATE ({model['approximate']})")

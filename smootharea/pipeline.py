@@ -115,6 +115,12 @@ def fit(job: Job, progress: bool | None = None, prepared: PreparedStudy | None =
         result = summarise_fit(prepared, recipe, idata, approximation_verdict(idata), timings,
                                approximate=str(idata.attrs["approximate"]))
         result.ranking["estimate"] = "APPROXIMATE"  # ranking.csv travels without model.json
+        attrs = idata.attrs
+        result.model_info["sampling"] = {  # what was done, not the job's sampler settings
+            "method": "approximate (no sampler)", "chains": int(attrs["chains"]),
+            "draws": int(attrs["draws"]), "warmup": 0,
+            **{k: attrs[k] for k in ("grid_points", "laplace_evaluations", "hyperparameter_mode")
+               if k in attrs}}
         return result
 
     from .model import build_model

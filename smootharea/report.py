@@ -366,7 +366,7 @@ def morans_table(run: RunFiles, before: dict | None) -> str:
 def status_banner(model: dict[str, Any]) -> str:
     parts = []
     diagnostics = model.get("diagnostics") or {}
-    if not diagnostics.get("converged", True):
+    if diagnostics.get("converged") is False:  # None: an approximate run, no sampler verdict
         reasons = "".join(f"<li>{esc(r)}</li>" for r in diagnostics.get("reasons") or [])
         parts.append('<div class="alarm" role="alert" id="not-converged">The sampler did not '
                      "converge: these estimates are not reliable and must not be published. "
@@ -380,7 +380,6 @@ def status_banner(model: dict[str, Any]) -> str:
 def what_was_estimated(run: RunFiles, thresholds: Sequence[float]) -> str:
     m = run.model
     recipe = m.get("recipe") or {}
-    sampling = m.get("sampling") or {}
     n = len(run.areas)
     level = f"{run.interval * 100:g}%"
     t_list = ", ".join(format_ratio(t) for t in thresholds)
@@ -392,18 +391,30 @@ def what_was_estimated(run: RunFiles, thresholds: Sequence[float]) -> str:
         "rate equals the rate expected from its population; 1.5 means half as many cases again. "
         f"The model is {esc(recipe.get('title') or recipe.get('name') or 'not stated')}, a "
         "Poisson model with log(expected) as offset whose area effects borrow strength from "
-        f"other areas; it was sampled by MCMC ({esc(sampling.get('chains', '?'))} chains of "
-        f"{esc(sampling.get('draws', '?'))} draws after {esc(sampling.get('warmup', '?'))} "
-        f"warm-up, seed {esc(m.get('seed'))}). Intervals are equal-tailed {level} credible "
+        f"other areas; {fitting_sentence(m)}. Intervals are equal-tailed {level} credible "
         f"intervals; exceedance probabilities P(relative risk &gt; t) are given for t = {esc(t_list)}."
     )
     return f'<section id="estimated"><h2>What was estimated</h2><p>{text}</p></section>'
 
 
+def fitting_sentence(model: dict[str, Any]) -> str:
+    """How the posterior was obtained: MCMC settings, or the approximation used."""
+    if model.get("approximate"):
+        return f"it was approximated, not sampled ({esc(model['approximate'])})"
+    sampling = model.get("sampling") or {}
+    return (f"it was sampled by MCMC ({esc(sampling.get('chains', '?'))} chains of "
+            f"{esc(sampling.get('draws', '?'))} draws after {esc(sampling.get('warmup', '?'))} "
+            f"warm-up, seed {esc(model.get('seed'))})")
+
+
 def diagnostics_section(model: dict[str, Any]) -> str:
     d = model.get("diagnostics") or {}
-    verdict = ("converged (every check passed)" if d.get("converged", False)
-               else "NOT converged")
+    if d.get("converged") is None and model.get("approximate"):
+        verdict = "approximate preview: no sampler was run, so there is no convergence verdict"
+    elif d.get("converged", False):
+        verdict = "converged (every check passed)"
+    else:
+        verdict = "NOT converged"
     rows = [["Verdict", esc(verdict)],
             ["Largest R-hat (want below 1.01)", number(d.get("max_rhat"), 3)],
             ["Smallest bulk ESS (want 400 or more)", number(d.get("min_ess_bulk"), 0)],

@@ -12,7 +12,9 @@ A run writes only into its own new folder; ``latest`` moves (by creating a
 temporary symlink and renaming it over the old one) only after every output
 of a converged run is on disk. So a run that fails at any point -- bad input,
 sampler error, SIGKILL, full disk -- leaves ``latest`` and every earlier run
-exactly as they were. Each run's ``run.json`` is written before anything else
+exactly as they were. An approximate run (``--quick``) gets its own run folder
+with status ``approximate`` and never moves ``latest``: it is a preview, and
+``latest`` is what gets published. Each run's ``run.json`` is written before anything else
 (status ``running``) and completed at the end; the history store is written
 last, and if it is unreachable the run folder still holds the full record for
 ``smootharea history JOB --sync``.
@@ -43,6 +45,7 @@ from .locking import LockHeld, acquire_job_lock
 from .provenance import file_sha256, package_versions
 
 RUN_LOG = "run.log"
+STATUS_APPROXIMATE = "approximate"  # a --quick run: exit 0, outputs written, latest not moved
 log = logging.getLogger("smootharea.run")
 
 
@@ -90,9 +93,9 @@ def prepare_inputs(job: Job):
     return prepare(job)
 
 
-def fit_model(job: Job, prepared, progress: bool | None):
+def fit_model(job: Job, prepared, progress: bool | None, quick: bool = False):
     from .pipeline import fit
-    return fit(job, progress=progress, prepared=prepared)
+    return fit(job, progress=progress, prepared=prepared, quick=quick)
 
 
 def write_run_outputs(result, run_dir: Path) -> dict[str, Path]:
@@ -234,12 +237,14 @@ def run_logging(run_dir: Path, stream: TextIO | None) -> Iterator[None]:
 
 def run_job(job: Job, out_dir: str | Path | None = None, progress: bool | None = None, *,
             store_url: str | None = None, log_stream: TextIO | None = None,
-            echo: bool = True) -> RunOutcome:
+            echo: bool = True, quick: bool = False) -> RunOutcome:
     """Fit ``job`` into a new run folder under ``out_dir`` (default: the job's output dir).
 
     Never raises for a failed run: the outcome's ``exit_code`` says what happened
-    (0 converged; 1 input problem; 2 not converged, outputs written but ``latest``
-    not moved; 3 output, store or sampler failure; 4 another run holds the lock).
+    (0 converged, or an approximate run; 1 input problem; 2 not converged, outputs
+    written but ``latest`` not moved; 3 output, store or sampler failure; 4 another
+    run holds the lock). ``quick``: the approximate preview of :mod:`smootharea.quick`
+    instead of the sampler; status ``approximate``, exit 0, ``latest`` not moved.
     The log goes to ``run.log`` in the run folder and, when ``echo``, to
     ``log_stream`` (default: standard error).
     """
@@ -275,7 +280,7 @@ def run_job(job: Job, out_dir: str | Path | None = None, progress: bool | None =
             try:
                 write_run_record(run_dir, outcome.record)
                 log.info("run %s of job %s started in %s", run_id, name, run_dir)
-                estimate_and_publish(job, out_root, outcome, progress)
+                estimate_and_publish(job, out_root, outcome, progress, quick)
             except Exception as error:  # noqa: BLE001 - e.g. run.json unwritable on a full disk
                 log.exception("run failed")
                 outcome.exit_code = EXIT_OUTPUT
@@ -299,8 +304,10 @@ def _early_exit(code: int, status: str, message: str, job: str,
 
 
 def estimate_and_publish(job: Job, out_root: Path, outcome: RunOutcome,
-                         progress: bool | None) -> None:
-    """Load, fit, write into the run folder, then (if converged) move ``latest``."""
+                         progress: bool | None, quick: bool = False) -> None:
+    """Load, fit, write into the run folder, then (if converged) move ``latest``.
+
+    A quick (approximate) run stops after writing: it never moves ``latest``."""
     record, run_dir = outcome.record, outcome.run_dir
     try:
         log.info("reading and checking inputs")
@@ -314,10 +321,15 @@ def estimate_and_publish(job: Job, out_root: Path, outcome: RunOutcome,
     record["input_hashes"] = dict(prepared.study.input_hashes) or record["input_hashes"]
 
     try:
-        log.info("fitting recipe %s: %d chains x %d draws (%d warmup), seed %d",
-                 job.model.recipe, job.sampling.chains, job.sampling.draws,
-                 job.sampling.warmup, job.sampling.seed)
-        result = fit_model(job, prepared, progress)
+        if quick:
+            log.info("APPROXIMATE run (--quick): recipe %s by a Laplace approximation with the "
+                     "hyperparameters on a grid; no sampler", job.model.recipe)
+            result = fit_model(job, prepared, progress, quick=True)
+        else:
+            log.info("fitting recipe %s: %d chains x %d draws (%d warmup), seed %d",
+                     job.model.recipe, job.sampling.chains, job.sampling.draws,
+                     job.sampling.warmup, job.sampling.seed)
+            result = fit_model(job, prepared, progress)
     except Exception as error:  # noqa: BLE001
         from .recipes import RecipeError
         if isinstance(error, RecipeError):
@@ -329,8 +341,12 @@ def estimate_and_publish(job: Job, out_root: Path, outcome: RunOutcome,
         return
     outcome.result = result
     verdict = result.verdict
-    record.update(converged=bool(verdict.converged),
-                  verdict="converged" if verdict.converged
+    approximate = result.model_info.get("approximate") if quick else None
+    if approximate:
+        record["approximate"] = approximate
+    record.update(converged=None if approximate else bool(verdict.converged),
+                  verdict=f"APPROXIMATE ({approximate})" if approximate
+                  else "converged" if verdict.converged
                   else "not converged: " + "; ".join(verdict.reasons),
                   diagnostics=verdict.to_dict(),
                   areas_flagged=int((result.areas["signal"] == "higher").sum()),
@@ -338,7 +354,7 @@ def estimate_and_publish(job: Job, out_root: Path, outcome: RunOutcome,
                   priors=result.model_info.get("priors", record["priors"]),
                   package_versions=result.model_info.get("package_versions",
                                                          record["package_versions"]))
-    log.info("sampler verdict: %s", record["verdict"])
+    log.info("%s: %s", "approximation" if approximate else "sampler verdict", record["verdict"])
 
     try:
         outcome.paths = write_run_outputs(result, run_dir)
@@ -351,6 +367,11 @@ def estimate_and_publish(job: Job, out_root: Path, outcome: RunOutcome,
     log.info("outputs written: %s", ", ".join(sorted(outcome.paths)))
     write_report_if_available(run_dir)
 
+    if approximate:
+        outcome.exit_code, outcome.status = EXIT_OK, STATUS_APPROXIMATE
+        outcome.message = (f"APPROXIMATE preview ({approximate}); outputs in {run_dir}; "
+                           f"'{LATEST_LINK}' not moved; rerun without --quick before publishing")
+        return
     if not verdict.converged:
         outcome.exit_code, outcome.status = EXIT_NOT_CONVERGED, STATUS_NOT_CONVERGED
         outcome.message = (f"NOT CONVERGED ({'; '.join(verdict.reasons)}); outputs kept in "
