@@ -65,6 +65,7 @@ class Sampling:
     warmup: int = 1000
     seed: int = 20261201
     cores: int | None = None
+    max_draws: int | None = None  # draws per chain may grow up to this until converged
 
 
 @dataclass(frozen=True)
@@ -235,12 +236,19 @@ def _positive_int(section: dict, key: str, default: int, where: str, table: str,
 def _sampling(section: dict, where: str, log: ProblemLog) -> Sampling:
     defaults = Sampling()
     cores = section.get("cores")
+    max_draws = section.get("max_draws")
+    draws = section.get("draws", defaults.draws)
+    if max_draws is not None and (not isinstance(max_draws, int) or isinstance(max_draws, bool)
+                                  or (isinstance(draws, int) and max_draws < draws)):
+        log.add(where, f"[sampling] max_draws must be a whole number of at least draws, not {max_draws!r}")
+        max_draws = None
     return Sampling(
         chains=_positive_int(section, "chains", defaults.chains, where, "sampling", log),
         draws=_positive_int(section, "draws", defaults.draws, where, "sampling", log),
         warmup=_positive_int(section, "warmup", defaults.warmup, where, "sampling", log),
         seed=_positive_int(section, "seed", defaults.seed, where, "sampling", log, minimum=0),
         cores=int(cores) if cores is not None else None,
+        max_draws=max_draws,
     )
 
 

@@ -123,11 +123,11 @@ def fit(job: Job, progress: bool | None = None, prepared: PreparedStudy | None =
                if k in attrs}}
         return result
 
-    from .model import build_model
-    from .sampling import sample_posterior
-    model = build_model(prepared.study, prepared.graph, recipe)
-    idata = sample_posterior(model, job.sampling, recipe, progress=progress)
-    timings["sampling_seconds"] = time.perf_counter() - started
+    from .sampling import sample_study
+    idata = sample_study(prepared.study, prepared.graph, recipe, job.sampling, progress=progress)
+    timings["model_seconds"] = time.perf_counter() - started
+    timings.update({f"sampler_{key}": float(idata.attrs[key])
+                    for key in ("compile_seconds", "sampling_seconds") if key in idata.attrs})
 
     verdict = assess_convergence(idata)
     return summarise_fit(prepared, recipe, idata, verdict, timings)
@@ -176,8 +176,7 @@ def model_record(prepared: PreparedStudy, recipe: "Recipe", idata: az.InferenceD
         "hyperparameters": hyperparameters(idata, interval),
         "diagnostics": verdict.to_dict(),
         **model_comparison(idata),
-        "sampling": {"chains": job.sampling.chains, "draws": job.sampling.draws,
-                     "warmup": job.sampling.warmup},
+        "sampling": sampling_settings(job, idata),
         "seed": job.sampling.seed,
         "graph": graph_record(prepared),
         "frequentist": prepared.references.to_dict(),
@@ -196,3 +195,13 @@ def graph_record(prepared: PreparedStudy) -> dict[str, Any]:
     summary["rule"] = prepared.job.neighbours.rule
     summary["edges"] = [[ids[i], ids[j]] for i, j in graph.edges.tolist()]
     return summary
+
+
+def sampling_settings(job: Job, idata: az.InferenceData) -> dict[str, Any]:
+    """The job's sampler settings and what the sampler actually did (draws kept, why it stopped)."""
+    settings = {"chains": job.sampling.chains, "draws": job.sampling.draws,
+                "warmup": job.sampling.warmup, "max_draws": job.sampling.max_draws}
+    if "draws_kept" in idata.attrs or "stop_reason" in idata.attrs:
+        from .sampling import sampling_record
+        settings.update(sampling_record(idata))
+    return settings

@@ -4,11 +4,28 @@ Adds the pointwise log-likelihood group ``observed`` (dims area) that
 ``arviz.loo``/``arviz.waic`` need, computed exactly in numpy from the draws of
 ``relative_risk``: log Poisson(O_i | E_i theta_i) (scipy.stats.poisson).
 The same seed gives the same draws.
+
+Draw count. ``[sampling] draws`` is the minimum per chain. When the convergence verdict
+(:func:`smootharea.diagnostics.assess_convergence`) fails after those draws, the *same*
+chains, past warm-up with their adapted step size and mass matrix, keep drawing and the
+verdict is checked again every half of ``draws`` more, up to a cap (``max_draws``,
+default 4 x ``draws``). Sampling stops at the first check that passes, at a check that
+finds divergent transitions (more draws cannot remove those), or at the cap. This is a
+sequential stopping rule on effective sample size, as in Vats, Flegal & Jones (2019,
+Biometrika 106) and Gong & Flegal (2016, J. Comput. Graph. Statist. 25): it is sound
+because the chains are never restarted or selected and every kept draw belongs to one
+continuous post-warm-up run; checks are spaced (not continuous) to limit the optimism of
+stopping on the statistic being reported. The kept draws are exactly those the last
+check judged, so the verdict computed afterwards is the same; what was done is recorded
+in ``idata.attrs`` (see :func:`sampling_record`).
 """
 from __future__ import annotations
 
 import os
 import sys
+import time
+from dataclasses import dataclass
+from typing import Any
 
 import arviz as az
 import numpy as np
@@ -16,38 +33,227 @@ import pymc as pm
 import xarray as xr
 from scipy.stats import poisson
 
+from .diagnostics import DEFAULT_VARIABLES, assess_convergence
 from .job import Sampling
 from .recipes import Recipe
 
+MAX_DRAWS_FACTOR = 8
+_POLL_SECONDS = 0.25
+
+
+@dataclass(frozen=True)
+class StopRule:
+    """When to stop drawing: the verdict's thresholds, checked at spaced draw counts."""
+
+    minimum: int
+    cap: int
+    step: int
+
+    def checkpoints(self) -> list[int]:
+        points = list(range(self.minimum, self.cap, self.step))
+        return points + [self.cap]
+
 
 def sample_posterior(model: pm.Model, sampling: Sampling, recipe: Recipe,
-                     progress: bool | None = None) -> az.InferenceData:
-    """Sample ``model`` with nutpie: ``sampling.chains`` x ``sampling.draws`` after
-    ``sampling.warmup`` tuning steps, target acceptance from the recipe.
+                     progress: bool | None = None, *, max_draws: int | None = None
+                     ) -> az.InferenceData:
+    """Sample ``model`` with nutpie: ``sampling.chains`` chains, ``sampling.warmup`` tuning
+    steps, then at least ``sampling.draws`` draws, extended up to ``max_draws`` (default
+    ``sampling.max_draws`` if the job sets it, else 4 x draws) until the convergence
+    verdict passes. ``max_draws <= draws`` gives a fixed draw count. Target acceptance
+    and mass matrix from the recipe. The compiled model is reused across calls of the
+    same structure (:mod:`smootharea.compiled_cache`).
 
     ``progress`` None shows a progress bar only when stderr is a terminal.
     """
     show_progress = sys.stderr.isatty() if progress is None else bool(progress)
-    cores = sampling.cores or os.cpu_count() or 1
+    cap = draw_cap(sampling, max_draws)
     try:
         import nutpie
     except ImportError:  # pragma: no cover - nutpie is a declared dependency
+        cores = sampling.cores or os.cpu_count() or 1
         idata = _sample_with_pymc(model, sampling, recipe, cores, show_progress)
-        sampler = f"pymc {pm.__version__} NUTS"
+        record = {"sampler": f"pymc {pm.__version__} NUTS", "draws_cap": sampling.draws,
+                  "stop_reason": "fixed draw count (PyMC fallback)", "compiled_from": "pymc"}
     else:
-        compiled = nutpie.compile_pymc_model(model)
-        idata = nutpie.sample(
-            compiled, draws=sampling.draws, tune=sampling.warmup, chains=sampling.chains,
-            cores=cores, seed=sampling.seed, target_accept=recipe.sampler.target_accept,
-            low_rank_modified_mass_matrix=recipe.sampler.low_rank_mass_matrix,
-            save_warmup=False, progress_bar=show_progress)
-        sampler = f"nutpie {nutpie.__version__}"
+        from .compiled_cache import compile_model
+        from .model import UNJITTERED
+
+        started = time.perf_counter()
+        jittered = {rv for rv in model.free_RVs if rv.name not in UNJITTERED}
+        compiled, source = compile_model(model, jitter_rvs=jittered)
+        compile_seconds = time.perf_counter() - started
+        started = time.perf_counter()
+        options = dict(tune=sampling.warmup, chains=sampling.chains, seed=sampling.seed,
+                       target_accept=recipe.sampler.target_accept,
+                       low_rank_modified_mass_matrix=recipe.sampler.low_rank_mass_matrix,
+                       save_warmup=False, progress_bar=show_progress)
+        if cap > sampling.draws and sampling.chains >= 2:  # one chain can never pass R-hat
+            rule = StopRule(minimum=sampling.draws, cap=cap, step=max(sampling.draws // 2, 50))
+            idata, reason, checks = _sample_until_converged(nutpie, compiled, rule, options,
+                                                            sampling, model)
+        else:
+            cores = sampling.cores or os.cpu_count() or 1
+            idata = nutpie.sample(compiled, draws=sampling.draws, cores=cores, **options)
+            reason, checks = "fixed draw count", 0
+        record = {"sampler": f"nutpie {nutpie.__version__}", "draws_cap": int(cap),
+                  "stop_reason": reason, "checks": int(checks), "compiled_from": source,
+                  "compile_seconds": float(compile_seconds),
+                  "sampling_seconds": float(time.perf_counter() - started)}
     add_log_likelihood(idata, model)
-    idata.attrs.update({"sampler": sampler, "recipe": recipe.name, "seed": int(sampling.seed),
-                        "chains": int(sampling.chains), "draws": int(sampling.draws),
-                        "warmup": int(sampling.warmup)})
+    kept = int(idata.posterior.sizes["draw"])
+    idata.attrs.update({"recipe": recipe.name, "seed": int(sampling.seed),
+                        "chains": int(sampling.chains), "draws": kept,
+                        "draws_minimum": int(sampling.draws), "warmup": int(sampling.warmup),
+                        **record})
     return idata
 
+
+def draw_cap(sampling: Sampling, max_draws: int | None = None) -> int:
+    """Most draws per chain: ``max_draws``, else ``sampling.max_draws``, else 4 x draws."""
+    cap = max_draws if max_draws is not None else getattr(sampling, "max_draws", None)
+    if cap is None:
+        cap = MAX_DRAWS_FACTOR * sampling.draws
+    return max(int(cap), int(sampling.draws))
+
+
+def sampling_record(idata: az.InferenceData) -> dict[str, Any]:
+    """What the sampler did, for model.json: draws kept per chain, the minimum and cap,
+    why it stopped, and whether the compiled model was reused."""
+    keys = ("sampler", "chains", "warmup", "draws", "draws_minimum", "draws_cap", "stop_reason",
+            "checks", "compiled_from", "compile_seconds", "sampling_seconds")
+    return {key: idata.attrs[key] for key in keys if key in idata.attrs}
+
+
+def sample_study(study, graph, recipe: Recipe, sampling: Sampling,
+                 progress: bool | None = None) -> az.InferenceData:
+    """Build the model and sample it, reusing a compiled model of the same structure."""
+    from .model import build_model
+
+    return sample_posterior(build_model(study, graph, recipe), sampling, recipe, progress=progress)
+
+
+# ----------------------------------------------------------------- adaptive length
+
+def _sample_until_converged(nutpie, compiled, rule: StopRule, options: dict,
+                            sampling: Sampling, model: pm.Model) -> tuple[az.InferenceData, str, int]:
+    # All chains run at once (threads = chains, the OS shares the cores) so that they
+    # reach each checkpoint together; with fewer threads nutpie runs chains in batches.
+    threads = max(sampling.chains, sampling.cores or 1)
+    sampler = nutpie.sample(compiled, draws=rule.cap, cores=threads, blocking=False, **options)
+    judged = [name for name in DEFAULT_VARIABLES if name in model.named_vars]
+    checks, reason, kept = 0, "", rule.cap
+    try:
+        for checkpoint in rule.checkpoints():
+            if checkpoint == rule.cap:
+                reason = f"reached the cap of {rule.cap} draws per chain"
+                break
+            if not _wait_for_draws(sampler, checkpoint, rule.cap):
+                reason = f"reached the cap of {rule.cap} draws per chain"
+                break
+            checks += 1
+            verdict = assess_convergence(_draws_so_far(sampler, judged, checkpoint))
+            if verdict.converged:
+                kept, reason = checkpoint, f"converged at check {checks} ({checkpoint} draws per chain)"
+                break
+            if verdict.divergences:
+                kept = checkpoint
+                reason = (f"stopped at {checkpoint} draws per chain: divergent transitions, "
+                          "which more draws cannot remove")
+                break
+        if kept == rule.cap:
+            idata = sampler.wait()
+        else:
+            idata = sampler.abort()
+    except BaseException:
+        sampler.cancel()
+        raise
+    return _first_draws(idata, kept), reason, checks
+
+
+def _wait_for_draws(sampler, target: int, cap: int) -> bool:
+    """Block until every chain has ``target`` post-warm-up draws; False if sampling ended."""
+    pause = _POLL_SECONDS
+    while True:
+        if _finished(sampler):
+            return _posterior_lengths(sampler).min() >= target and target < cap
+        started = time.perf_counter()
+        lengths = _posterior_lengths(sampler)
+        cost = time.perf_counter() - started
+        if lengths.min() >= target:
+            return True
+        pause = max(pause, 20 * cost)  # keep inspection a small share of the time
+        time.sleep(pause)
+
+
+def _finished(sampler) -> bool:
+    try:
+        return bool(sampler.is_finished)
+    except TimeoutError:  # nutpie 0.16 raises instead of answering False while running
+        return False
+
+
+def _raw_batches(sampler):
+    """Arrow record batches (draws, stats) per chain, without converting to ArviZ."""
+    return sampler._sampler.inspect().get_arrow_trace()
+
+
+def _posterior_lengths(sampler) -> np.ndarray:
+    _, stats = _raw_batches(sampler)
+    return np.array([batch.num_rows - _tuning_rows(batch) for batch in stats])
+
+
+def _tuning_rows(stats_batch) -> int:
+    return int(np.asarray(_column(stats_batch, "tuning"), dtype=bool).sum())
+
+
+def _column(batch, name: str) -> np.ndarray:
+    import pyarrow
+
+    column = pyarrow.array(batch.column(name))
+    if hasattr(column, "flatten"):
+        rows = len(column)
+        flat = column.flatten().to_numpy(zero_copy_only=False)
+        return flat.reshape(rows, -1) if rows else flat.reshape(0, 0)
+    return column.to_numpy(zero_copy_only=False)
+
+
+def _draws_so_far(sampler, names: list[str], count: int) -> az.InferenceData:
+    """The first ``count`` post-warm-up draws of the judged variables and the stats the
+    verdict needs, read straight from nutpie's arrow trace (cheap; no other variables)."""
+    draws, stats = _raw_batches(sampler)
+    posterior: dict[str, np.ndarray] = {}
+    sample_stats: dict[str, np.ndarray] = {}
+    for name in names:
+        per_chain = []
+        for draw_batch, stat_batch in zip(draws, stats):
+            start = _tuning_rows(stat_batch)
+            values = _column(draw_batch, name)[start:start + count]
+            per_chain.append(values.reshape(count, -1) if values.ndim > 1 else values)
+        posterior[name] = np.stack(per_chain)
+    for name in ("diverging", "energy"):
+        per_chain = []
+        for stat_batch in stats:
+            start = _tuning_rows(stat_batch)
+            per_chain.append(_column(stat_batch, name)[start:start + count])
+        sample_stats[name] = np.stack(per_chain)
+    return az.from_dict(posterior=posterior, sample_stats=sample_stats)
+
+
+def _first_draws(idata: az.InferenceData, count: int) -> az.InferenceData:
+    """Keep draws 0..count-1 of every chain in every group that has a draw axis."""
+    groups = {}
+    for group in idata.groups():
+        data = getattr(idata, group)
+        if "draw" in data.dims and data.sizes["draw"] > count:
+            data = data.isel(draw=slice(0, count))
+        groups[group] = data
+    trimmed = az.InferenceData(**groups)
+    trimmed.attrs.update(idata.attrs)
+    return trimmed
+
+
+# ---------------------------------------------------------------------- fallbacks
 
 def _sample_with_pymc(model: pm.Model, sampling: Sampling, recipe: Recipe, cores: int,
                       show_progress: bool) -> az.InferenceData:

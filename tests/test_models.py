@@ -164,7 +164,9 @@ def test_phi_from_distance_inverts_the_distance_with_exact_gradient():
     distance = pt.dscalar("d")
     logit_phi = logit_mixing_from_distance(distance, spectrum)
     solve = pytensor.function([distance], [logit_phi, pytensor.grad(logit_phi, distance)])
-    for phi in (1e-6, 0.05, 0.5, 0.95, 1 - 1e-8):
+    # Interpolated inverse (model.py): exact to 1e-8 in logit(phi) against the exact distance,
+    # at knots and between them, and C1 (gradient equal to a central difference).
+    for phi in (1e-6, 1e-3, 0.05, 0.123456, 0.5, 0.777, 0.95, 0.999, 1 - 1e-8):
         d = float(mixing_distance(phi, spectrum))
         y, slope = solve(d)
         assert y == pytest.approx(math.log(phi) - math.log1p(-phi), abs=1e-8)
@@ -225,7 +227,7 @@ def test_poisson_gamma_matches_the_conjugate_posterior():
     recipe = load_recipe("poisson_gamma")
     a, b = recipe.priors["relative_risk"].params["shape"], recipe.priors["relative_risk"].params["rate"]
     idata = sample_posterior(build_model(study, nc_graph(study), recipe), SHORT, recipe,
-                             progress=False)
+                             progress=False, max_draws=SHORT.draws)
     exact = stats.gamma(a + study.observed, scale=1 / (b + study.expected))
     theta = idata.posterior["relative_risk"]
     mean_error = np.abs(theta.mean(("chain", "draw")).values - exact.mean())
@@ -253,7 +255,7 @@ def test_exchangeable_with_tiny_sigma_reproduces_the_poisson_glm():
     study = nc_study(covariate=True)
     recipe = load_recipe("exchangeable").with_prior("sigma", "fixed", value=0.001)
     idata = sample_posterior(build_model(study, nc_graph(study), recipe), SHORT, recipe,
-                             progress=False)
+                             progress=False, max_draws=SHORT.draws)
     x = study.covariates["nonwhite_share"].to_numpy()
     glm = sm.GLM(study.observed, sm.add_constant(x), family=sm.families.Poisson(),
                  offset=np.log(study.expected)).fit()
@@ -279,7 +281,7 @@ def test_bym2_shrinks_toward_one_most_where_expected_counts_are_small():
     study = nc_study()
     recipe = load_recipe("bym2")
     idata = sample_posterior(build_model(study, nc_graph(study), recipe), SHORT, recipe,
-                             progress=False)
+                             progress=False, max_draws=SHORT.draws)
     smr = study.observed / study.expected
     risk = idata.posterior["relative_risk"].median(("chain", "draw")).values
     assert risk.std() < 0.6 * smr.std()
@@ -300,7 +302,7 @@ def test_island_and_two_components_sample_with_exact_zero_sums(name):
     recipe = load_recipe(name)
     idata = sample_posterior(build_model(study, graph, recipe),
                              Sampling(chains=2, draws=300, warmup=300, seed=7, cores=2),
-                             recipe, progress=False)
+                             recipe, progress=False, max_draws=300)
     u = idata.posterior["u"].values
     for members in graph.components:
         sums = u[..., members].sum(axis=-1)
@@ -310,17 +312,38 @@ def test_island_and_two_components_sample_with_exact_zero_sums(name):
 
 
 @pytest.mark.slow
-def test_same_seed_gives_identical_draws():
+def test_same_seed_gives_identical_draws_even_when_the_run_is_extended():
+    # 2 chains x 100 draws cannot reach bulk ESS 400, so the run is extended (the same
+    # chains keep drawing, sampling.py); extension and stopping depend only on the draws.
     study = nc_study(first=20)
     recipe = load_recipe("poisson_gamma")
     model = build_model(study, nc_graph(study), recipe)
     sampling = Sampling(chains=2, draws=100, warmup=100, seed=99, cores=2)
-    first = sample_posterior(model, sampling, recipe, progress=False).posterior["relative_risk"]
+    first_run = sample_posterior(model, sampling, recipe, progress=False)
+    first = first_run.posterior["relative_risk"]
     second = sample_posterior(model, sampling, recipe, progress=False).posterior["relative_risk"]
     np.testing.assert_array_equal(first.values, second.values)
     other = Sampling(chains=2, draws=100, warmup=100, seed=100, cores=2)
     third = sample_posterior(model, other, recipe, progress=False).posterior["relative_risk"]
-    assert not np.array_equal(first.values, third.values)
+    assert not np.array_equal(first.values[:, :100], third.values[:, :100])
+    # Extended past the minimum, stopped at a checkpoint (100 + k * 50) that passed the verdict.
+    kept = first.sizes["draw"]
+    assert 200 <= kept <= 800 and (kept - 100) % 50 == 0
+    assert first_run.attrs["stop_reason"].startswith("converged")
+    verdict = assess_convergence(first_run)
+    assert verdict.converged and verdict.min_ess_bulk >= 400, verdict.reasons
+
+
+@pytest.mark.slow
+def test_fixed_draw_count_when_the_cap_equals_the_minimum():
+    study = nc_study(first=20)
+    recipe = load_recipe("poisson_gamma")
+    sampling = Sampling(chains=2, draws=100, warmup=100, seed=99, cores=2)
+    idata = sample_posterior(build_model(study, nc_graph(study), recipe), sampling, recipe,
+                             progress=False, max_draws=100)
+    assert idata.posterior.sizes["draw"] == 100
+    assert idata.attrs["stop_reason"] == "fixed draw count"
+    assert idata.attrs["draws_cap"] == 100
 
 
 # ---------------------------------------------------------------- diagnostics

@@ -1,0 +1,290 @@
+"""Reuse nutpie's compiled model across fits of the same structure.
+
+Compiling a model with nutpie's numba backend takes 10-30 s; sampling a small study
+takes a few. The compiled code depends only on the model's *structure* (neighbour
+graph, recipe, covariate names, number of areas: ``model.structure_key``, set by
+:func:`smootharea.model.build_model`); the data enter as ``pm.Data`` shared arrays that
+nutpie swaps without recompiling (``CompiledPyMCModel.with_data``). So:
+
+- in one process, a dictionary keyed by structure (plus the environment) holds the
+  compiled model;
+- across processes (nightly runs), the machine code of nutpie's two C callbacks is
+  written to a cache folder with numba's own cache serialisation
+  (``CompileResult._reduce``/``_rebuild``, the mechanism behind ``@njit(cache=True)``,
+  which refuses these callbacks only because they are closures). Loading needs no
+  compilation, only the cheap PyMC initial-point function is rebuilt.
+
+Hand-written because neither nutpie nor numba caches closures across processes.
+The cache folder is ``$SMOOTHAREA_CACHE_DIR`` (an empty value turns the disk cache
+off), else ``$XDG_CACHE_HOME/smootharea/compiled``, else ``~/.cache/smootharea/compiled``.
+Entries are keyed by structure plus package versions, CPU and the source of the
+model-building code, so any change there compiles afresh. An unreadable entry is
+ignored and rewritten.
+"""
+from __future__ import annotations
+
+import contextlib
+import dataclasses
+import hashlib
+import os
+import pickle
+import platform
+import sys
+import tempfile
+import threading
+from collections import Counter
+from pathlib import Path
+from typing import Any, Iterator
+
+import numpy as np
+import pymc as pm
+
+CACHE_FORMAT = "smootharea-compiled-v1"
+_MAX_DISK_ENTRIES = 64
+_MEMORY_ENTRIES = 8
+
+# Where each compiled model came from in this process: "memory", "disk" or "compiled".
+statistics: Counter[str] = Counter()
+_memory: dict[str, Any] = {}
+_lock = threading.Lock()
+_compile_lock = threading.Lock()  # the capture below patches numba process-wide
+
+
+def cache_dir() -> Path | None:
+    """Folder of the on-disk cache, or None when turned off (SMOOTHAREA_CACHE_DIR="")."""
+    configured = os.environ.get("SMOOTHAREA_CACHE_DIR")
+    if configured is not None:
+        return Path(configured).expanduser() if configured.strip() else None
+    base = os.environ.get("XDG_CACHE_HOME") or str(Path.home() / ".cache")
+    return Path(base) / "smootharea" / "compiled"
+
+
+def compile_model(model: pm.Model, jitter_rvs: set | None = None,
+                  var_names: list[str] | None = None) -> tuple[Any, str]:
+    """A nutpie compiled model for ``model``, and where it came from.
+
+    Returns ``(compiled, source)`` with ``source`` one of ``"memory"``, ``"disk"``
+    (reused, data swapped in) or ``"compiled"``. Models without ``structure_key``
+    are always compiled.
+    """
+    import nutpie
+
+    options = {"jitter_rvs": jitter_rvs, "var_names": var_names}
+    structure = getattr(model, "structure_key", None)
+    if structure is None:
+        statistics["compiled"] += 1
+        return nutpie.compile_pymc_model(model, **options), "compiled"
+    key = _full_key(structure, model, jitter_rvs, var_names)
+    with _lock:
+        template = _memory.get(key)
+    if template is not None:
+        statistics["memory"] += 1
+        return _with_model_data(template, model), "memory"
+    compiled = _load_from_disk(key, model, options)
+    source = "disk"
+    if compiled is None:
+        with _compile_lock, _capture_callback_results() as captured:
+            compiled = nutpie.compile_pymc_model(model, **options)
+        _save_to_disk(key, compiled, captured)
+        source = "compiled"
+    with _lock:
+        _memory[key] = compiled
+        while len(_memory) > _MEMORY_ENTRIES:
+            _memory.pop(next(iter(_memory)))
+    statistics[source] += 1
+    return compiled, source
+
+
+def clear_memory_cache() -> None:
+    """Forget compiled models held in this process (the disk cache stays)."""
+    with _lock:
+        _memory.clear()
+
+
+# ----------------------------------------------------------------------------- keys
+
+def environment_fingerprint() -> str:
+    """Package versions, Python, CPU and the source of the model code, hashed."""
+    import llvmlite
+    import numba
+    import nutpie
+    import pytensor
+    from llvmlite import binding
+
+    here = Path(__file__).resolve().parent
+    digest = hashlib.sha256(CACHE_FORMAT.encode())
+    for part in (sys.version, platform.machine(), binding.get_host_cpu_name(),
+                 binding.get_host_cpu_features().flatten(), nutpie.__version__, pm.__version__,
+                 pytensor.__version__, numba.__version__, llvmlite.__version__, np.__version__):
+        digest.update(str(part).encode() + b"\0")
+    for module in ("model.py", "compiled_cache.py", "graph.py"):
+        digest.update((here / module).read_bytes())
+    return digest.hexdigest()
+
+
+_fingerprint: str | None = None
+
+
+def _full_key(structure: str, model: pm.Model, jitter_rvs, var_names) -> str:
+    global _fingerprint
+    if _fingerprint is None:
+        _fingerprint = environment_fingerprint()
+    jittered = sorted(rv.name for rv in (jitter_rvs if jitter_rvs is not None else model.free_RVs))
+    digest = hashlib.sha256(f"{_fingerprint}|{structure}|{jittered}|{var_names}".encode())
+    return digest.hexdigest()
+
+
+# ------------------------------------------------------------------- data swapping
+
+def _with_model_data(template: Any, model: pm.Model) -> Any:
+    """``template`` (compiled for another model of the same structure) with this model's
+    shared data and coordinates."""
+    from nutpie.compile_pymc import _prepare_dims_and_coords
+
+    updates = {name: _shared_value(model, name) for name in template.shared_data}
+    compiled = template.with_data(**updates)
+    dims, coords = _prepare_dims_and_coords(model, compiled.shape_info)
+    return dataclasses.replace(compiled, dims=dims, _coords=coords)
+
+
+def _shared_value(model: pm.Model, name: str) -> np.ndarray:
+    return np.asarray(model[name].get_value())
+
+
+# ---------------------------------------------------------------------- disk cache
+
+@contextlib.contextmanager
+def _capture_callback_results() -> Iterator[list]:
+    """Record numba's CompileResult of each C callback compiled inside the block."""
+    from numba.core import ccallback
+
+    captured: list = []
+    original = ccallback.CFunc._compile_uncached
+
+    def recording(self):
+        result = original(self)
+        captured.append((self, result))
+        return result
+
+    ccallback.CFunc._compile_uncached = recording
+    try:
+        yield captured
+    finally:
+        ccallback.CFunc._compile_uncached = original
+
+
+def _entry_path(key: str) -> Path | None:
+    folder = cache_dir()
+    return None if folder is None else folder / f"{key}.pkl"
+
+
+def _save_to_disk(key: str, compiled: Any, captured: list) -> None:
+    path = _entry_path(key)
+    if path is None:
+        return
+    from numba.core import serialize
+
+    results = {id(cfunc): result for cfunc, result in captured}
+    try:
+        logp = results[id(compiled.compiled_logp_func)]
+        expand = results[id(compiled.compiled_expand_func)]
+        payload = {
+            "format": CACHE_FORMAT,
+            "logp": serialize.dumps(logp._reduce()),
+            "expand": serialize.dumps(expand._reduce()),
+            "n_dim": compiled.n_dim,
+            "n_expanded": compiled.n_expanded,
+            "shape_info": compiled.shape_info,
+            "shared_names": list(compiled.shared_data),
+            "user_data_dtype": compiled.user_data.dtype,
+        }
+        path.parent.mkdir(parents=True, exist_ok=True)
+        handle, temporary = tempfile.mkstemp(dir=path.parent, prefix=".partial-", suffix=".pkl")
+        with os.fdopen(handle, "wb") as stream:
+            pickle.dump(payload, stream, protocol=pickle.HIGHEST_PROTOCOL)
+        os.replace(temporary, path)
+        _prune(path.parent)
+    except Exception:  # noqa: BLE001 - a cache that cannot be written only costs time
+        return
+
+
+def _prune(folder: Path) -> None:
+    entries = sorted(folder.glob("*.pkl"), key=lambda p: p.stat().st_mtime, reverse=True)
+    for stale in entries[_MAX_DISK_ENTRIES:]:
+        stale.unlink(missing_ok=True)
+
+
+def _load_from_disk(key: str, model: pm.Model, options: dict) -> Any | None:
+    path = _entry_path(key)
+    if path is None or not path.is_file():
+        return None
+    try:
+        with path.open("rb") as stream:
+            payload = pickle.load(stream)
+        if payload.get("format") != CACHE_FORMAT:
+            return None
+        compiled = _rebuild(payload, model, options)
+        path.touch()
+        return compiled
+    except Exception:  # noqa: BLE001 - unreadable or stale entry: compile afresh
+        return None
+
+
+class _LoadedCallback:
+    """Stands in for numba's CFunc: nutpie only reads ``address``."""
+
+    def __init__(self, result: Any):
+        self._result = result  # keeps the loaded code alive
+        self.address = result.library.get_pointer_to_function(
+            result.fndesc.llvm_cfunc_wrapper_name)
+
+
+def _load_callback(blob: bytes) -> _LoadedCallback:
+    from numba.core import compiler
+    from numba.core.registry import cpu_target
+
+    reduced = pickle.loads(blob)
+    return _LoadedCallback(compiler.CompileResult._rebuild(cpu_target.target_context, *reduced))
+
+
+def _rebuild(payload: dict, model: pm.Model, options: dict) -> Any:
+    """A CompiledPyMCModel from cached machine code and the current model's data."""
+    from nutpie.compile_pymc import (CompiledPyMCModel, _prepare_dims_and_coords,
+                                     _rv_dict_to_flat_array_wrapper, update_user_data)
+    from pymc.initial_point import make_initial_point_fn
+
+    names, _, shapes = payload["shape_info"]
+    n_free = len(model.free_RVs)
+    value_names = [model.rvs_to_values[rv].name for rv in model.free_RVs]
+    if list(names[:n_free]) != value_names:
+        raise ValueError("cached model does not match the free variables")
+    jitter = options["jitter_rvs"]
+    point = make_initial_point_fn(model=model, default_strategy="support_point",
+                                  jitter_rvs=set(model.free_RVs) if jitter is None else jitter,
+                                  return_transformed=True)
+    initial_point = _rv_dict_to_flat_array_wrapper(_locked(point), names=value_names,
+                                                   shapes=[tuple(s) for s in shapes[:n_free]])
+    shared = {}
+    for name in payload["shared_names"]:
+        value = np.array(_shared_value(model, name), order="C", copy=True)
+        value.flags.writeable = False
+        shared[name] = value
+    user_data = update_user_data(np.zeros((), dtype=payload["user_data_dtype"]), shared)
+    dims, coords = _prepare_dims_and_coords(model, payload["shape_info"])
+    return CompiledPyMCModel(
+        _n_dim=payload["n_dim"], dims=dims, _coords=coords,
+        _shapes={name: tuple(shape) for name, _, shape in zip(*payload["shape_info"])},
+        compiled_logp_func=_load_callback(payload["logp"]),
+        compiled_expand_func=_load_callback(payload["expand"]),
+        initial_point_func=initial_point, shared_data=shared, user_data=user_data,
+        n_expanded=payload["n_expanded"], shape_info=payload["shape_info"],
+        logp_func=None, expand_func=None)
+
+
+def _locked(function):
+    lock = threading.Lock()
+
+    def call(*args, **kwargs):
+        with lock:
+            return function(*args, **kwargs)
+    return call

@@ -1,0 +1,133 @@
+"""The compiled-model cache: same structure reuses the compiled code (in this process and,
+through the cache folder, in a new one), a changed structure does not, and reused code
+samples the *new* data.
+
+Data: the first 12 North Carolina counties (libpysal 'sids2.shp', an open dataset shipped
+with libpysal), expected counts internally standardised on births (METHODS.md section 1).
+"""
+from __future__ import annotations
+
+import dataclasses
+import os
+import subprocess
+import sys
+import textwrap
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from smootharea import compiled_cache
+from smootharea.graph import graph_from_edges
+from smootharea.job import Sampling
+from smootharea.model import build_model
+from smootharea.recipes import load_recipe
+from smootharea.sampling import sample_posterior
+
+from test_models import nc_study, queen_edges
+
+ROOT = Path(__file__).resolve().parents[1]
+TINY = Sampling(chains=2, draws=100, warmup=100, seed=5, cores=2)
+
+
+@pytest.fixture
+def cache_folder(tmp_path, monkeypatch):
+    monkeypatch.setenv("SMOOTHAREA_CACHE_DIR", str(tmp_path / "compiled"))
+    compiled_cache.clear_memory_cache()
+    compiled_cache.statistics.clear()
+    yield tmp_path / "compiled"
+    compiled_cache.clear_memory_cache()
+
+
+def _small(first: int = 12):
+    study = nc_study(first=first)
+    graph = graph_from_edges(study.area_ids, queen_edges(study.areas))
+    return study, graph
+
+
+@pytest.mark.slow
+def test_same_structure_reuses_the_compiled_model_and_a_changed_graph_does_not(cache_folder,
+                                                                              monkeypatch):
+    study, graph = _small()
+    recipe = load_recipe("exchangeable")
+    first = sample_posterior(build_model(study, graph, recipe), TINY, recipe, progress=False,
+                             max_draws=TINY.draws)
+    assert first.attrs["compiled_from"] == "compiled"
+    assert len(list(cache_folder.glob("*.pkl"))) == 1
+
+    # Same structure, other counts: reused, and it samples the new data exactly as a fresh
+    # compilation of the new model does (same seed, same draws).
+    tripled = dataclasses.replace(study, observed=study.observed * 3,
+                                  expected=study.expected * 3)
+    second = sample_posterior(build_model(tripled, graph, recipe), TINY, recipe, progress=False,
+                              max_draws=TINY.draws)
+    assert second.attrs["compiled_from"] == "memory"
+    np.testing.assert_array_equal(second.observed_data["observed"].values, tripled.observed)
+    compiled_cache.clear_memory_cache()
+    monkeypatch.setenv("SMOOTHAREA_CACHE_DIR", "")  # disk cache off: compile afresh
+    fresh = sample_posterior(build_model(tripled, graph, recipe), TINY, recipe, progress=False,
+                             max_draws=TINY.draws)
+    assert fresh.attrs["compiled_from"] == "compiled"
+    np.testing.assert_array_equal(second.posterior["relative_risk"].values,
+                                  fresh.posterior["relative_risk"].values)
+    assert not np.array_equal(first.posterior["relative_risk"].values,
+                              second.posterior["relative_risk"].values)
+
+    # One link fewer: another structure, compiled afresh.
+    edges = queen_edges(study.areas)[1:]
+    other = graph_from_edges(study.area_ids, edges)
+    third = sample_posterior(build_model(study, other, recipe), TINY, recipe, progress=False,
+                             max_draws=TINY.draws)
+    assert third.attrs["compiled_from"] == "compiled"
+    assert compiled_cache.statistics == {"compiled": 3, "memory": 1}
+
+
+def test_structure_key_follows_graph_recipe_and_covariates_not_counts():
+    study, graph = _small()
+    bym2, exchangeable = load_recipe("bym2"), load_recipe("exchangeable")
+    key = build_model(study, graph, bym2).structure_key
+    recounted = dataclasses.replace(study, observed=study.observed + 1)
+    assert build_model(recounted, graph, bym2).structure_key == key
+    assert build_model(study, graph, exchangeable).structure_key != key
+    fewer_links = graph_from_edges(study.area_ids, queen_edges(study.areas)[:-1])
+    assert build_model(study, fewer_links, bym2).structure_key != key
+    tighter = bym2.with_prior("sigma", "pc_sd", upper=0.5, tail_probability=0.01)
+    assert build_model(study, graph, tighter).structure_key != key
+
+
+_CHILD = textwrap.dedent("""
+    import sys, json
+    sys.path.insert(0, {tests!r})
+    from test_models import nc_study, queen_edges
+    from smootharea.graph import graph_from_edges
+    from smootharea.job import Sampling
+    from smootharea.model import build_model
+    from smootharea.recipes import load_recipe
+    from smootharea.sampling import sample_posterior
+    study = nc_study(first=12)
+    graph = graph_from_edges(study.area_ids, queen_edges(study.areas))
+    recipe = load_recipe("exchangeable")
+    idata = sample_posterior(build_model(study, graph, recipe),
+                             Sampling(chains=2, draws=100, warmup=100, seed=5, cores=2),
+                             recipe, progress=False, max_draws=100)
+    print(json.dumps({{"source": idata.attrs["compiled_from"],
+                      "draws": idata.posterior["relative_risk"].values.ravel()[:50].tolist()}}))
+""")
+
+
+@pytest.mark.slow
+def test_a_new_process_loads_the_compiled_model_from_the_cache_folder(cache_folder):
+    import json
+
+    script = _CHILD.format(tests=str(ROOT / "tests"))
+    env = {**os.environ, "SMOOTHAREA_CACHE_DIR": str(cache_folder)}
+
+    def child() -> dict:
+        done = subprocess.run([sys.executable, "-c", script], env=env, cwd=ROOT,
+                              capture_output=True, text=True, timeout=300, check=True)
+        return json.loads(done.stdout.strip().splitlines()[-1])
+
+    first, second = child(), child()
+    assert first["source"] == "compiled" and second["source"] == "disk"
+    # Loaded machine code is the same code: same seed, same draws.
+    assert first["draws"] == second["draws"]
