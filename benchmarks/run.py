@@ -74,20 +74,26 @@ def detect_cache() -> str | None:
     return None
 
 
-def worker_nuts(job_path: Path, summary: Path) -> dict:
-    """smootharea's own path: prepare, build_model, sample_posterior (compile + sample)."""
-    import nutpie
-
+def prepare_timed(job_path: Path):
+    """Load and prepare a job, timing the preparation: (job, prepared, result row)."""
     from smootharea.job import load_job
-    from smootharea.model import build_model
     from smootharea.pipeline import prepare
-    from smootharea.recipes import load_recipe
-    from smootharea.sampling import sample_posterior
 
     job = load_job(job_path)
     clock = time.perf_counter()
     prepared = prepare(job)
-    result = {"prepare_s": time.perf_counter() - clock, "areas": prepared.study.n_areas}
+    return job, prepared, {"prepare_s": time.perf_counter() - clock, "areas": prepared.study.n_areas}
+
+
+def worker_nuts(job_path: Path, summary: Path) -> dict:
+    """smootharea's own path: prepare, build_model, sample_posterior (compile + sample)."""
+    import nutpie
+
+    from smootharea.model import build_model
+    from smootharea.recipes import load_recipe
+    from smootharea.sampling import sample_posterior
+
+    job, prepared, result = prepare_timed(job_path)
     recipe = load_recipe(job.model.recipe, base_dir=job.base_dir)
     clock = time.perf_counter()
     model = build_model(prepared.study, prepared.graph, recipe)
@@ -130,15 +136,10 @@ def worker_nuts(job_path: Path, summary: Path) -> dict:
 
 
 def worker_quick(job_path: Path, summary: Path) -> dict:
-    from smootharea.job import load_job
-    from smootharea.pipeline import prepare
     from smootharea.quick import fit_quick
     from smootharea.recipes import load_recipe
 
-    job = load_job(job_path)
-    clock = time.perf_counter()
-    prepared = prepare(job)
-    result = {"prepare_s": time.perf_counter() - clock, "areas": prepared.study.n_areas}
+    job, prepared, result = prepare_timed(job_path)
     recipe = load_recipe(job.model.recipe, base_dir=job.base_dir)
     clock = time.perf_counter()
     idata = fit_quick(prepared, recipe, job.sampling)
@@ -154,13 +155,8 @@ def worker_quick(job_path: Path, summary: Path) -> dict:
 def worker_baseline(job_path: Path, summary: Path) -> dict:
     from baseline import baseline_skip_reason, build_baseline_model, sample_baseline
 
-    from smootharea.job import load_job
-    from smootharea.pipeline import prepare
 
-    job = load_job(job_path)
-    clock = time.perf_counter()
-    prepared = prepare(job)
-    result = {"prepare_s": time.perf_counter() - clock, "areas": prepared.study.n_areas}
+    job, prepared, result = prepare_timed(job_path)
     reason = baseline_skip_reason(prepared.graph)
     if reason:
         return {**result, "note": reason}
