@@ -55,9 +55,14 @@ def register(commands) -> None:
 
 
 def _open_store_for(job, out: Path | None):
-    from .history import open_store, resolve_store_url
+    """(store, output dir); the store is None, with the reason printed, when it cannot be opened."""
+    from .history import StoreError, open_store, resolve_store_url
     out_dir = out or job.output_dir
-    return open_store(resolve_store_url(job, out_dir)), out_dir
+    try:
+        return open_store(resolve_store_url(job, out_dir)), out_dir
+    except StoreError as error:
+        print(f"smootharea: {error}", file=sys.stderr)
+        return None, out_dir
 
 
 def format_history(runs) -> str:
@@ -84,10 +89,8 @@ def command_history(arguments: argparse.Namespace) -> int:
     job = load_job_or_report(arguments.job)
     if job is None:
         return EXIT_INPUT
-    try:
-        store, out_dir = _open_store_for(job, arguments.out)
-    except StoreError as error:
-        print(f"smootharea: {error}", file=sys.stderr)
+    store, out_dir = _open_store_for(job, arguments.out)
+    if store is None:
         return EXIT_OUTPUT
     try:
         if arguments.sync:
@@ -119,10 +122,8 @@ def command_changes(arguments: argparse.Namespace) -> int:
         return EXIT_INPUT
     rules = ChangeRules(min_change=arguments.min_change, rank_shift=arguments.rank_shift,
                         signal_margin=arguments.signal_margin)
-    try:
-        store, _ = _open_store_for(job, arguments.out)
-    except StoreError as error:
-        print(f"smootharea: {error}", file=sys.stderr)
+    store, _ = _open_store_for(job, arguments.out)
+    if store is None:
         return EXIT_OUTPUT
     try:
         pair = choose_runs(store, job.description.name, since=arguments.since, current=arguments.run)

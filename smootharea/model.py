@@ -25,6 +25,7 @@ import pytensor.tensor as pt
 import scipy.sparse as sp
 from scipy.sparse.linalg import eigsh
 
+from .covariates import CovariateScaling, standardise_covariates  # noqa: F401 (re-exported)
 from .graph import NeighbourGraph
 from .recipes import Prior, Recipe
 from .study import StudyData
@@ -37,15 +38,6 @@ UNJITTERED = ("phi_distance",)
 _LANCZOS_PROBES = 48
 _LANCZOS_STEPS = 60
 _DEFLATED_EIGENPAIRS = 100
-
-
-@dataclass(frozen=True)
-class CovariateScaling:
-    """Means and SDs used to standardise covariates (kept to report beta per original unit)."""
-
-    names: tuple[str, ...]
-    means: np.ndarray
-    sds: np.ndarray
 
 
 # --------------------------------------------------------------------------- builder
@@ -135,20 +127,6 @@ def _regression(study: StudyData, graph: NeighbourGraph, recipe: Recipe,
     pm.Deterministic("relative_risk", pt.exp(log_theta), dims="area")
     pm.Poisson("observed", mu=pt.exp(log_theta + log_expected), observed=observed, dims="area")
     return scaling
-
-
-def standardise_covariates(study: StudyData) -> CovariateScaling:
-    """Means and SDs (ddof=0) of each covariate; a constant covariate is an error."""
-    names = study.covariate_names
-    if not names:
-        return CovariateScaling((), np.empty(0), np.empty(0))
-    values = study.covariates.to_numpy(dtype=float)
-    means, sds = values.mean(axis=0), values.std(axis=0)
-    constant = [name for name, sd in zip(names, sds) if not sd > 0]
-    if constant:
-        raise ValueError(f"covariate(s) {', '.join(constant)} take the same value in every area "
-                         "and cannot be estimated; remove them from [model] covariates")
-    return CovariateScaling(tuple(names), means, sds)
 
 
 # ----------------------------------------------------------------- random effects

@@ -48,6 +48,8 @@ from scipy.optimize import minimize
 from scipy.sparse.linalg import spsolve_triangular, splu
 from scipy.special import expit, gammaln, logit
 
+from .covariates import standardise_covariates
+
 if TYPE_CHECKING:
     from .job import Sampling
     from .pipeline import PreparedStudy
@@ -296,7 +298,8 @@ def build_latent_model(prepared: "PreparedStudy", recipe: "Recipe") -> LatentMod
     from .graph import icar_precision
     study, graph = prepared.study, prepared.graph
     n = study.n_areas
-    means, sds, x_z = standardised_covariates(study)
+    scaling = standardise_covariates(study)
+    means, sds, x_z = scaling.means, scaling.sds, scaling.standardise(study)
     p = x_z.shape[1]
     has_u = recipe.structure in ("icar", "bym", "bym2")
     intercept = recipe.priors["intercept"].params
@@ -335,18 +338,6 @@ def build_latent_model(prepared: "PreparedStudy", recipe: "Recipe") -> LatentMod
         hyper=[h for h in entries.values() if isinstance(h, Hyperparameter)],
         fixed={k: v for k, v in entries.items() if not isinstance(v, Hyperparameter)},
         coefficients=coefficients)
-
-
-def standardised_covariates(study) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Means, SDs (ddof 0) and the standardised covariate matrix, as smootharea.model does
-    (repeated here so the quick path never imports PyMC, a 4-second import)."""
-    values = study.covariates.to_numpy(dtype=float).reshape(study.n_areas, -1)
-    means, sds = values.mean(axis=0), values.std(axis=0)
-    constant = [name for name, sd in zip(study.covariate_names, sds) if not sd > 0]
-    if constant:
-        raise ValueError(f"covariate(s) {', '.join(constant)} take the same value in every area "
-                         "and cannot be estimated; remove them from [model] covariates")
-    return means, sds, (values - means) / np.where(sds > 0, sds, 1.0)
 
 
 def _hyperparameters(recipe: "Recipe", graph, island: np.ndarray, inverse_sqrt_scaling: np.ndarray):
