@@ -47,11 +47,12 @@ def peak_megabytes() -> float:
 def sampler_quality(idata) -> dict:
     """Smallest bulk/tail ESS and largest R-hat over relative risks and hyperparameters."""
     import arviz as az
+    from smootharea.diagnostics import per_element
     names = ["relative_risk"] + [n for n in HYPERPARAMETERS if n in idata.posterior
                                  and float(idata.posterior[n].std()) > 0]
-    bulk = az.ess(idata, var_names=names, method="bulk")
-    tail = az.ess(idata, var_names=names, method="tail")
-    rhat = az.rhat(idata, var_names=names, method="rank")
+    bulk = per_element(az.ess, idata.posterior, names, method="bulk")
+    tail = per_element(az.ess, idata.posterior, names, method="tail")
+    rhat = per_element(az.rhat, idata.posterior, names, method="rank")
     smallest = lambda d: float(min(np.nanmin(d[n].values) for n in names))
     divergences = (int(idata.sample_stats["diverging"].sum())
                    if "sample_stats" in idata.groups() and "diverging" in idata.sample_stats else None)

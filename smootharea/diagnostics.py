@@ -49,9 +49,9 @@ def assess_convergence(idata: az.InferenceData, var_names: Sequence[str] | None 
     reasons: list[str] = []
     n_chains = posterior.sizes.get("chain", 1)
 
-    rhat = az.rhat(posterior, var_names=names, method="rank") if names else xr.Dataset()
-    ess_bulk = az.ess(posterior, var_names=names, method="bulk") if names else xr.Dataset()
-    ess_tail = az.ess(posterior, var_names=names, method="tail") if names else xr.Dataset()
+    rhat = per_element(az.rhat, posterior, names, method="rank")
+    ess_bulk = per_element(az.ess, posterior, names, method="bulk")
+    ess_tail = per_element(az.ess, posterior, names, method="tail")
     if n_chains < 2:
         reasons.append("R-hat needs at least 2 chains; run more chains")
     else:
@@ -74,6 +74,29 @@ def assess_convergence(idata: az.InferenceData, var_names: Sequence[str] | None 
                    max_rhat=_extreme(rhat, np.nanmax), min_ess_bulk=_extreme(ess_bulk, np.nanmin),
                    min_ess_tail=_extreme(ess_tail, np.nanmin), divergences=divergences,
                    min_bfmi=float(np.nanmin(bfmi)) if bfmi.size else math.nan)
+
+
+def per_element(statistic, posterior: xr.Dataset, names: Sequence[str],
+                block: int = 256, **options) -> xr.Dataset:
+    """``statistic`` (az.rhat or az.ess) of each named variable, over blocks of at most
+    ``block`` elements along its first non-sample dimension.
+
+    Same numbers as one call; ArviZ's rank normalisation makes several full-size copies of
+    its input, which on large maps (thousands of areas x thousands of draws) took many
+    times the memory of the draws themselves.
+    """
+    results = {}
+    for name in names:
+        draws = posterior[name]
+        extra = [dim for dim in draws.dims if dim not in ("chain", "draw")]
+        if not extra or draws.sizes[extra[0]] <= block:
+            results[name] = statistic(draws.to_dataset(name=name), **options)[name]
+            continue
+        dim = extra[0]
+        parts = [statistic(draws.isel({dim: slice(start, start + block)}).to_dataset(name=name),
+                           **options)[name] for start in range(0, draws.sizes[dim], block)]
+        results[name] = xr.concat(parts, dim=dim)
+    return xr.Dataset(results)
 
 
 def _varies(draws: xr.DataArray) -> bool:

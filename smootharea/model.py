@@ -35,6 +35,9 @@ from .study import StudyData
 DENSE_SPECTRUM_MAX = 2000
 # Free variables whose initial value is set deliberately and not jittered.
 UNJITTERED = ("phi_distance",)
+# Per-area internals of the random effects: no output reads them, so the sampler's trace
+# leaves them out (smootharea.sampling.stored_variables).
+LATENT_INTERNALS = ("u_free", "u", "v", "v_island")
 _LANCZOS_PROBES = 48
 _LANCZOS_STEPS = 60
 _DEFLATED_EIGENPAIRS = 100
@@ -78,7 +81,7 @@ def structure_key(graph: NeighbourGraph, recipe: Recipe, covariate_names: Sequen
     """
     digest = hashlib.sha256()
     recipe_content = {k: v for k, v in recipe.to_dict().items() if k not in ("source", "sampler")}
-    for part in (b"structure-v1", str(graph.n_areas).encode(),
+    for part in (b"structure-v2", str(graph.n_areas).encode(),
                  np.ascontiguousarray(graph.edges, dtype=np.int64).tobytes(),
                  np.ascontiguousarray(graph.component, dtype=np.int64).tobytes(),
                  json.dumps(recipe_content, sort_keys=True).encode(),
@@ -95,7 +98,7 @@ def _poisson_gamma(study: StudyData, recipe: Recipe, observed, log_expected) -> 
                          f"remove {', '.join(study.covariate_names)} from [model] covariates")
     prior = recipe.priors["relative_risk"].params
     theta = pm.Gamma("relative_risk", alpha=prior["shape"], beta=prior["rate"], dims="area")
-    pm.Poisson("observed", mu=pt.exp(log_expected) * theta, observed=observed, dims="area")
+    poisson_log_likelihood(observed, log_expected + pt.log(theta))
     return CovariateScaling((), np.empty(0), np.empty(0))
 
 
@@ -125,8 +128,18 @@ def _regression(study: StudyData, graph: NeighbourGraph, recipe: Recipe,
     effect = random_effect(graph, recipe)
     log_theta = linear + effect
     pm.Deterministic("relative_risk", pt.exp(log_theta), dims="area")
-    pm.Poisson("observed", mu=pt.exp(log_theta + log_expected), observed=observed, dims="area")
+    poisson_log_likelihood(observed, log_theta + log_expected)
     return scaling
+
+
+def poisson_log_likelihood(observed, log_mean) -> pt.TensorVariable:
+    """sum_i O_i log(mu_i) - mu_i: the Poisson log-likelihood without its constant
+    -sum log(O_i!). The counts are data (pm.Data, so that a compiled model can be reused
+    for new counts), so pm.Poisson would re-evaluate log(O_i!) at every gradient.
+    The pointwise log-likelihood for LOO/WAIC is computed in full afterwards
+    (smootharea.sampling.add_log_likelihood)."""
+    return pm.Potential("poisson_log_likelihood",
+                        pt.sum(observed * log_mean - pt.exp(log_mean)))
 
 
 # ----------------------------------------------------------------- random effects

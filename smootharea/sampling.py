@@ -35,6 +35,7 @@ from scipy.stats import poisson
 
 from .diagnostics import DEFAULT_VARIABLES, assess_convergence
 from .job import Sampling
+from .model import LATENT_INTERNALS
 from .recipes import Recipe
 
 MAX_DRAWS_FACTOR = 8
@@ -55,8 +56,8 @@ class StopRule:
 
 
 def sample_posterior(model: pm.Model, sampling: Sampling, recipe: Recipe,
-                     progress: bool | None = None, *, max_draws: int | None = None
-                     ) -> az.InferenceData:
+                     progress: bool | None = None, *, max_draws: int | None = None,
+                     keep_latent: bool = False) -> az.InferenceData:
     """Sample ``model`` with nutpie: ``sampling.chains`` chains, ``sampling.warmup`` tuning
     steps, then at least ``sampling.draws`` draws, extended up to ``max_draws`` (default
     ``sampling.max_draws`` if the job sets it, else 4 x draws) until the convergence
@@ -64,7 +65,9 @@ def sample_posterior(model: pm.Model, sampling: Sampling, recipe: Recipe,
     and mass matrix from the recipe. The compiled model is reused across calls of the
     same structure (:mod:`smootharea.compiled_cache`).
 
-    ``progress`` None shows a progress bar only when stderr is a terminal.
+    ``progress`` None shows progress only when stderr is a terminal. The trace keeps the
+    published variables (:func:`stored_variables`); ``keep_latent`` keeps the per-area
+    internals (``u``, ``v``, ...) too, at several times the memory.
     """
     show_progress = sys.stderr.isatty() if progress is None else bool(progress)
     cap = draw_cap(sampling, max_draws)
@@ -81,25 +84,30 @@ def sample_posterior(model: pm.Model, sampling: Sampling, recipe: Recipe,
 
         started = time.perf_counter()
         jittered = {rv for rv in model.free_RVs if rv.name not in UNJITTERED}
-        compiled, source = compile_model(model, jitter_rvs=jittered)
+        compiled, source = compile_model(model, jitter_rvs=jittered,
+                                         var_names=None if keep_latent else stored_variables(model))
         compile_seconds = time.perf_counter() - started
         started = time.perf_counter()
         options = dict(tune=sampling.warmup, chains=sampling.chains, seed=sampling.seed,
                        target_accept=recipe.sampler.target_accept,
-                       low_rank_modified_mass_matrix=recipe.sampler.low_rank_mass_matrix,
-                       save_warmup=False, progress_bar=show_progress)
+                       low_rank=recipe.sampler.low_rank_mass_matrix, show_progress=show_progress)
         if cap > sampling.draws and sampling.chains >= 2:  # one chain can never pass R-hat
             rule = StopRule(minimum=sampling.draws, cap=cap, step=max(sampling.draws // 2, 50))
-            idata, reason, checks = _sample_until_converged(nutpie, compiled, rule, options,
+            idata, reason, checks = _sample_until_converged(compiled, rule, options,
                                                             sampling, model)
         else:
             cores = sampling.cores or os.cpu_count() or 1
-            idata = nutpie.sample(compiled, draws=sampling.draws, cores=cores, **options)
+            sampler = _start_sampler(compiled, draws=sampling.draws,
+                                     cores=min(cores, sampling.chains), **options)
+            idata = _wait_all(sampler)
             reason, checks = "fixed draw count", 0
         record = {"sampler": f"nutpie {nutpie.__version__}", "draws_cap": int(cap),
                   "stop_reason": reason, "checks": int(checks), "compiled_from": source,
                   "compile_seconds": float(compile_seconds),
                   "sampling_seconds": float(time.perf_counter() - started)}
+    if not keep_latent:
+        drop = [name for name in idata.posterior.data_vars if name in LATENT_INTERNALS]
+        idata.posterior = idata.posterior.drop_vars(drop)
     add_log_likelihood(idata, model)
     kept = int(idata.posterior.sizes["draw"])
     idata.attrs.update({"recipe": recipe.name, "seed": int(sampling.seed),
@@ -107,6 +115,15 @@ def sample_posterior(model: pm.Model, sampling: Sampling, recipe: Recipe,
                         "draws_minimum": int(sampling.draws), "warmup": int(sampling.warmup),
                         **record})
     return idata
+
+
+def stored_variables(model: pm.Model) -> list[str]:
+    """Variables nutpie computes for the trace besides the sampler's position: every one
+    except the per-area internals of the random effect (:data:`LATENT_INTERNALS`), which
+    no output reads. nutpie keeps the position (free parameters such as ``u_free`` and
+    ``v``) in any case; :func:`sample_posterior` drops those from the result."""
+    names = [variable.name for variable in model.free_RVs + model.deterministics]
+    return [name for name in names if name not in LATENT_INTERNALS]
 
 
 def draw_cap(sampling: Sampling, max_draws: int | None = None) -> int:
@@ -135,24 +152,23 @@ def sample_study(study, graph, recipe: Recipe, sampling: Sampling,
 
 # ----------------------------------------------------------------- adaptive length
 
-def _sample_until_converged(nutpie, compiled, rule: StopRule, options: dict,
-                            sampling: Sampling, model: pm.Model) -> tuple[az.InferenceData, str, int]:
+def _sample_until_converged(compiled, rule: StopRule, options: dict, sampling: Sampling,
+                            model: pm.Model) -> tuple[az.InferenceData, str, int]:
     # All chains run at once (threads = chains, the OS shares the cores) so that they
     # reach each checkpoint together; with fewer threads nutpie runs chains in batches.
     threads = max(sampling.chains, sampling.cores or 1)
-    sampler = nutpie.sample(compiled, draws=rule.cap, cores=threads, blocking=False, **options)
+    sampler = _start_sampler(compiled, draws=rule.cap, cores=threads, **options)
     judged = [name for name in DEFAULT_VARIABLES if name in model.named_vars]
+    per_area = {name for name in judged if "area" in model.named_vars_to_dims.get(name, ())}
     checks, reason, kept = 0, "", rule.cap
     try:
         for checkpoint in rule.checkpoints():
-            if checkpoint == rule.cap:
-                reason = f"reached the cap of {rule.cap} draws per chain"
-                break
             if not _wait_for_draws(sampler, checkpoint, rule.cap):
                 reason = f"reached the cap of {rule.cap} draws per chain"
                 break
             checks += 1
-            verdict = assess_convergence(_draws_so_far(sampler, judged, checkpoint))
+            sampler.progress.note(f"checking convergence at {checkpoint} draws per chain")
+            verdict = _verdict_at(sampler, judged, per_area, checkpoint)
             if verdict.converged:
                 kept, reason = checkpoint, f"converged at check {checks} ({checkpoint} draws per chain)"
                 break
@@ -161,29 +177,124 @@ def _sample_until_converged(nutpie, compiled, rule: StopRule, options: dict,
                 reason = (f"stopped at {checkpoint} draws per chain: divergent transitions, "
                           "which more draws cannot remove")
                 break
-        if kept == rule.cap:
-            idata = sampler.wait()
-        else:
-            idata = sampler.abort()
+        idata = _wait_all(sampler) if kept == rule.cap else _abort(sampler)
     except BaseException:
         sampler.cancel()
         raise
     return _first_draws(idata, kept), reason, checks
 
 
+def _verdict_at(sampler, judged: list[str], per_area: set[str], checkpoint: int):
+    """The convergence verdict on the first ``checkpoint`` draws of every chain.
+
+    The verdict is a conjunction, so the scalar parameters (and the sampler statistics)
+    are judged first, and the per-area variables are read and judged only if those pass:
+    on large maps the per-area R-hat and ESS cost seconds per check, while the slowest
+    mixing parameters are usually the scalar ones.
+    """
+    scalars = [name for name in judged if name not in per_area]
+    if scalars and per_area:
+        verdict = assess_convergence(_draws_so_far(sampler, scalars, checkpoint), var_names=scalars)
+        if not verdict.converged:
+            return verdict
+    return assess_convergence(_draws_so_far(sampler, judged, checkpoint), var_names=judged)
+
+
+class DrawCounter:
+    """Draws per chain (warm-up included) as nutpie reports them through its progress
+    callback, so waiting for a checkpoint never copies the trace. With ``show`` it also
+    writes one progress line to stderr."""
+
+    TEMPLATE = "{% for chain in chains %}{{ chain.finished_draws }};{% endfor %}"
+
+    def __init__(self, chains: int, warmup: int, total: int, show: bool):
+        self.finished = np.zeros(chains, dtype=np.int64)
+        self.warmup, self.total, self.show = warmup, total, show
+        self._shown = -1.0
+
+    def __call__(self, text: str) -> None:
+        try:
+            counts = [int(part) for part in text.split(";") if part.strip()]
+        except ValueError:
+            counts = []
+        if len(counts) == self.finished.size:
+            self.finished = np.asarray(counts, dtype=np.int64)
+        if self.show and time.monotonic() - self._shown > 1.0:
+            self._shown = time.monotonic()
+            self.note(self._describe())
+
+    def post_warmup(self) -> np.ndarray:
+        return np.maximum(self.finished - self.warmup, 0)
+
+    def note(self, message: str) -> None:
+        if self.show:
+            sys.stderr.write(f"\r  sampling: {message:<70}")
+            sys.stderr.flush()
+
+    def close(self) -> None:
+        if self.show:
+            sys.stderr.write("\n")
+
+    def _describe(self) -> str:
+        slowest = int(self.finished.min())
+        if slowest < self.warmup:
+            return f"warm-up {slowest}/{self.warmup} per chain"
+        return f"{int(self.post_warmup().min())} draws per chain (at most {self.total})"
+
+
+def _start_sampler(compiled, *, draws: int, tune: int, chains: int, cores: int, seed: int,
+                   target_accept: float, low_rank: bool, show_progress: bool):
+    """Start nutpie in the background with a :class:`DrawCounter` as its progress callback.
+
+    Uses nutpie internals (pinned in pyproject.toml): its public ``sample`` offers a
+    progress callback only inside notebooks, and the other way to learn how far the chains
+    are, copying the whole trace, cost more than the sampling on large maps.
+    """
+    from nutpie import _lib
+    from nutpie.sample import _BackgroundSampler
+
+    settings = (_lib.PyNutsSettings.LowRank if low_rank else _lib.PyNutsSettings.Diag)(seed)
+    settings.num_tune, settings.num_draws, settings.num_chains = tune, draws, chains
+    settings.target_accept = target_accept
+    counter = DrawCounter(chains, tune, draws, show_progress)
+
+    class CountingSampler(_BackgroundSampler):
+        def __init__(self):  # the parent's __init__ would choose its own progress display
+            self._settings, self._compiled_model = settings, compiled
+            self._save_warmup, self._return_raw_trace, self._html = False, False, None
+            self._store = _lib.PyStorage.arrow()
+            self.progress = counter
+            callback = _lib.ProgressType.template_callback(250, DrawCounter.TEMPLATE, cores, counter)
+            self._sampler = compiled._make_sampler(settings, np.zeros(compiled.n_dim), cores,
+                                                   callback, self._store)
+
+    return CountingSampler()
+
+
+def _wait_all(sampler) -> az.InferenceData:
+    try:
+        return sampler.wait()
+    finally:
+        sampler.progress.close()
+
+
+def _abort(sampler) -> az.InferenceData:
+    try:
+        return sampler.abort()
+    finally:
+        sampler.progress.close()
+
+
 def _wait_for_draws(sampler, target: int, cap: int) -> bool:
-    """Block until every chain has ``target`` post-warm-up draws; False if sampling ended."""
-    pause = _POLL_SECONDS
-    while True:
-        if _finished(sampler):
-            return _posterior_lengths(sampler).min() >= target and target < cap
-        started = time.perf_counter()
-        lengths = _posterior_lengths(sampler)
-        cost = time.perf_counter() - started
-        if lengths.min() >= target:
-            return True
-        pause = max(pause, 20 * cost)  # keep inspection a small share of the time
-        time.sleep(pause)
+    """Block until every chain has ``target`` post-warm-up draws; False if sampling ended
+    short of them or ``target`` is the cap."""
+    while sampler.progress.post_warmup().min() < target:
+        if _finished(sampler):  # the callback may not have reported the last draws
+            _, stats = sampler._sampler.inspect().get_arrow_trace()
+            lengths = [batch.num_rows - _tuning_rows(batch) for batch in stats]
+            return min(lengths) >= target and target < cap
+        time.sleep(_POLL_SECONDS)
+    return target < cap
 
 
 def _finished(sampler) -> bool:
@@ -191,16 +302,6 @@ def _finished(sampler) -> bool:
         return bool(sampler.is_finished)
     except TimeoutError:  # nutpie 0.16 raises instead of answering False while running
         return False
-
-
-def _raw_batches(sampler):
-    """Arrow record batches (draws, stats) per chain, without converting to ArviZ."""
-    return sampler._sampler.inspect().get_arrow_trace()
-
-
-def _posterior_lengths(sampler) -> np.ndarray:
-    _, stats = _raw_batches(sampler)
-    return np.array([batch.num_rows - _tuning_rows(batch) for batch in stats])
 
 
 def _tuning_rows(stats_batch) -> int:
@@ -220,8 +321,8 @@ def _column(batch, name: str) -> np.ndarray:
 
 def _draws_so_far(sampler, names: list[str], count: int) -> az.InferenceData:
     """The first ``count`` post-warm-up draws of the judged variables and the stats the
-    verdict needs, read straight from nutpie's arrow trace (cheap; no other variables)."""
-    draws, stats = _raw_batches(sampler)
+    verdict needs, read from a copy of nutpie's arrow trace (only at checkpoints)."""
+    draws, stats = sampler._sampler.inspect().get_arrow_trace()
     posterior: dict[str, np.ndarray] = {}
     sample_stats: dict[str, np.ndarray] = {}
     for name in names:

@@ -200,7 +200,7 @@ def test_every_recipe_builds_with_the_named_variables():
     for name, hyper in expected_free.items():
         model = build_model(study, graph, load_recipe(name))
         names = set(model.named_vars)
-        assert {"relative_risk", "intercept", "beta", "observed"} <= names, name
+        assert {"relative_risk", "intercept", "beta", "poisson_log_likelihood"} <= names, name
         assert hyper <= names, name
         assert model.named_vars_to_dims["relative_risk"] == ("area",)
         assert list(model.coords["area"]) == list(study.area_ids)
@@ -282,6 +282,9 @@ def test_bym2_shrinks_toward_one_most_where_expected_counts_are_small():
     recipe = load_recipe("bym2")
     idata = sample_posterior(build_model(study, nc_graph(study), recipe), SHORT, recipe,
                              progress=False, max_draws=SHORT.draws)
+    # The trace keeps what outputs read, not the random effect's per-area internals.
+    assert {"relative_risk", "sigma", "phi"} <= set(idata.posterior.data_vars)
+    assert not {"u", "v", "u_free"} & set(idata.posterior.data_vars)
     smr = study.observed / study.expected
     risk = idata.posterior["relative_risk"].median(("chain", "draw")).values
     assert risk.std() < 0.6 * smr.std()
@@ -302,7 +305,7 @@ def test_island_and_two_components_sample_with_exact_zero_sums(name):
     recipe = load_recipe(name)
     idata = sample_posterior(build_model(study, graph, recipe),
                              Sampling(chains=2, draws=300, warmup=300, seed=7, cores=2),
-                             recipe, progress=False, max_draws=300)
+                             recipe, progress=False, max_draws=300, keep_latent=True)
     u = idata.posterior["u"].values
     for members in graph.components:
         sums = u[..., members].sum(axis=-1)
@@ -312,18 +315,48 @@ def test_island_and_two_components_sample_with_exact_zero_sums(name):
 
 
 @pytest.mark.slow
+def test_poisson_term_equals_scipy_log_likelihood_less_the_factorial_constant():
+    # Reference: scipy.stats.poisson.logpmf; the model drops only -sum log(O_i!), which
+    # does not depend on the parameters.
+    study = nc_study(first=20)
+    model = build_model(study, nc_graph(study), load_recipe("exchangeable"))
+    point = model.initial_point()
+    point["intercept_standardised"] = 0.3
+    point["v"] = np.linspace(-1.0, 1.0, study.n_areas)
+    point["sigma_log__"] = math.log(0.5)
+    term = model.replace_rvs_by_values([model["poisson_log_likelihood"]])[0]
+    potential = model.compile_fn(term, inputs=model.value_vars, on_unused_input="ignore",
+                                 point_fn=False)(**point)
+    theta = np.exp(0.3 + 0.5 * point["v"])
+    reference = stats.poisson.logpmf(study.observed, study.expected * theta).sum()
+    constant = -np.sum([math.lgamma(count + 1) for count in study.observed])
+    assert potential == pytest.approx(reference - constant, rel=1e-12)
+
+
+def test_draw_counter_reads_post_warmup_draws_from_progress_text():
+    from smootharea.sampling import DrawCounter
+
+    counter = DrawCounter(chains=3, warmup=1000, total=4000, show=False)
+    assert counter.post_warmup().tolist() == [0, 0, 0]
+    counter("1200;1000;950;")
+    assert counter.post_warmup().tolist() == [200, 0, 0]
+    counter("garbled")  # a text that does not name every chain leaves the counts alone
+    assert counter.post_warmup().tolist() == [200, 0, 0]
+
+
 def test_same_seed_gives_identical_draws_even_when_the_run_is_extended():
     # 2 chains x 100 draws cannot reach bulk ESS 400, so the run is extended (the same
     # chains keep drawing, sampling.py); extension and stopping depend only on the draws.
+    # With only 100 warm-up steps some seeds need more than the 800-draw cap (seed 99 did).
     study = nc_study(first=20)
     recipe = load_recipe("poisson_gamma")
     model = build_model(study, nc_graph(study), recipe)
-    sampling = Sampling(chains=2, draws=100, warmup=100, seed=99, cores=2)
+    sampling = Sampling(chains=2, draws=100, warmup=100, seed=1, cores=2)
     first_run = sample_posterior(model, sampling, recipe, progress=False)
     first = first_run.posterior["relative_risk"]
     second = sample_posterior(model, sampling, recipe, progress=False).posterior["relative_risk"]
     np.testing.assert_array_equal(first.values, second.values)
-    other = Sampling(chains=2, draws=100, warmup=100, seed=100, cores=2)
+    other = Sampling(chains=2, draws=100, warmup=100, seed=2, cores=2)
     third = sample_posterior(model, other, recipe, progress=False).posterior["relative_risk"]
     assert not np.array_equal(first.values[:, :100], third.values[:, :100])
     # Extended past the minimum, stopped at a checkpoint (100 + k * 50) that passed the verdict.
@@ -359,6 +392,20 @@ def _fake_posterior(shift: float = 0.0, diverging: int = 0) -> az.InferenceData:
     return az.from_dict(posterior={"relative_risk": risk, "sigma": sigma},
                         sample_stats={"diverging": flags, "energy": rng.normal(size=(4, 1000))},
                         coords={"area": ["a", "b", "c"]}, dims={"relative_risk": ["area"]})
+
+
+def test_blockwise_diagnostics_equal_one_arviz_call():
+    # Reference: ArviZ's own az.ess / az.rhat over the whole variable at once.
+    from smootharea.diagnostics import per_element
+
+    rng = np.random.default_rng(5)
+    risk = np.cumsum(rng.normal(size=(4, 300, 70)), axis=1) * 0.05 + rng.normal(size=(4, 300, 70))
+    posterior = az.from_dict(posterior={"relative_risk": risk}, dims={"relative_risk": ["area"]}).posterior
+    for statistic, method in ((az.ess, "bulk"), (az.ess, "tail"), (az.rhat, "rank")):
+        blocks = per_element(statistic, posterior, ["relative_risk"], block=16, method=method)
+        whole = statistic(posterior, var_names=["relative_risk"], method=method)
+        np.testing.assert_allclose(blocks["relative_risk"].values, whole["relative_risk"].values,
+                                   rtol=1e-12)
 
 
 def test_verdict_passes_ideal_chains():
