@@ -22,9 +22,12 @@ in ``idata.attrs`` (see :func:`sampling_record`).
 from __future__ import annotations
 
 import os
+import shutil
 import sys
+import tempfile
 import time
 from dataclasses import dataclass
+from pathlib import Path
 from typing import Any
 
 import arviz as az
@@ -99,7 +102,7 @@ def sample_posterior(model: pm.Model, sampling: Sampling, recipe: Recipe,
             cores = sampling.cores or os.cpu_count() or 1
             sampler = _start_sampler(compiled, draws=sampling.draws,
                                      cores=min(cores, sampling.chains), **options)
-            idata = _wait_all(sampler)
+            idata = _collect(sampler, sampling.draws, abort=False)
             reason, checks = "fixed draw count", 0
         record = {"sampler": f"nutpie {nutpie.__version__}", "draws_cap": int(cap),
                   "stop_reason": reason, "checks": int(checks), "compiled_from": source,
@@ -177,11 +180,12 @@ def _sample_until_converged(compiled, rule: StopRule, options: dict, sampling: S
                 reason = (f"stopped at {checkpoint} draws per chain: divergent transitions, "
                           "which more draws cannot remove")
                 break
-        idata = _wait_all(sampler) if kept == rule.cap else _abort(sampler)
     except BaseException:
         sampler.cancel()
+        sampler.progress.close()
+        _remove_trace(sampler)
         raise
-    return _first_draws(idata, kept), reason, checks
+    return _collect(sampler, kept, abort=kept < rule.cap), reason, checks
 
 
 def _verdict_at(sampler, judged: list[str], per_area: set[str], checkpoint: int):
@@ -249,20 +253,29 @@ def _start_sampler(compiled, *, draws: int, tune: int, chains: int, cores: int, 
     Uses nutpie internals (pinned in pyproject.toml): its public ``sample`` offers a
     progress callback only inside notebooks, and the other way to learn how far the chains
     are, copying the whole trace, cost more than the sampling on large maps.
+
+    The trace goes to a zarr store in a temporary folder on disk when it would take more
+    than :data:`DISK_TRACE_BYTES` in memory (see :func:`trace_bytes`), else stays in memory.
     """
-    from nutpie import _lib
+    from nutpie import _lib, zarr_store
     from nutpie.sample import _BackgroundSampler
 
     settings = (_lib.PyNutsSettings.LowRank if low_rank else _lib.PyNutsSettings.Diag)(seed)
     settings.num_tune, settings.num_draws, settings.num_chains = tune, draws, chains
     settings.target_accept = target_accept
     counter = DrawCounter(chains, tune, draws, show_progress)
+    on_disk = trace_bytes(compiled, chains, tune + draws) > DISK_TRACE_BYTES
 
     class CountingSampler(_BackgroundSampler):
         def __init__(self):  # the parent's __init__ would choose its own progress display
             self._settings, self._compiled_model = settings, compiled
             self._save_warmup, self._return_raw_trace, self._html = False, False, None
-            self._store = _lib.PyStorage.arrow()
+            self.trace_dir = Path(tempfile.mkdtemp(prefix="smootharea-trace-")) if on_disk else None
+            if self.trace_dir is None:
+                self._store = _lib.PyStorage.arrow()
+            else:
+                self._zarr_store = zarr_store.LocalStore(str(self.trace_dir))
+                self._store = _lib.PyStorage.zarr(self._zarr_store)
             self.progress = counter
             callback = _lib.ProgressType.template_callback(250, DrawCounter.TEMPLATE, cores, counter)
             self._sampler = compiled._make_sampler(settings, np.zeros(compiled.n_dim), cores,
@@ -271,18 +284,51 @@ def _start_sampler(compiled, *, draws: int, tune: int, chains: int, cores: int, 
     return CountingSampler()
 
 
-def _wait_all(sampler) -> az.InferenceData:
-    try:
-        return sampler.wait()
-    finally:
-        sampler.progress.close()
+# Above this estimated size the trace is written to disk (zarr) instead of kept in memory.
+DISK_TRACE_BYTES = 512 * 2**20
 
 
-def _abort(sampler) -> az.InferenceData:
+def trace_bytes(compiled, chains: int, rows: int) -> int:
+    """Memory nutpie's in-memory trace would take: every stored variable plus, per draw,
+    the position and gradient (nutpie 0.16 keeps both whatever its store_* settings say),
+    8 bytes each, warm-up included."""
+    stored = sum(int(np.prod(shape)) for shape in (compiled.shapes or {}).values())
+    return 8 * chains * rows * (stored + 2 * compiled.n_dim)
+
+
+def _collect(sampler, kept: int, abort: bool) -> az.InferenceData:
+    """The first ``kept`` draws per chain, loaded into memory; the disk trace is removed."""
     try:
-        return sampler.abort()
+        idata = sampler.abort() if abort else sampler.wait()
+        idata = _first_draws(_without_warmup_and_internals(idata), kept)
+        for group in idata.groups():
+            getattr(idata, group).load()
+        return idata
     finally:
         sampler.progress.close()
+        _remove_trace(sampler)
+
+
+def _remove_trace(sampler) -> None:
+    if getattr(sampler, "trace_dir", None) is not None:
+        shutil.rmtree(sampler.trace_dir, ignore_errors=True)
+
+
+# Sampler statistics nutpie writes per draw that no output reads (each as long as the
+# parameter vector); kept out of the result.
+_UNREAD_STATS = ("unconstrained_draw", "gradient", "mass_matrix_inv", "divergence_start",
+                 "divergence_start_gradient", "divergence_end", "divergence_momentum")
+
+
+def _without_warmup_and_internals(idata: az.InferenceData) -> az.InferenceData:
+    groups = {group: getattr(idata, group) for group in idata.groups()
+              if not group.startswith("warmup")}
+    if "sample_stats" in groups:
+        stats = groups["sample_stats"]
+        groups["sample_stats"] = stats.drop_vars([n for n in _UNREAD_STATS if n in stats])
+    trimmed = az.InferenceData(**groups)
+    trimmed.attrs.update(idata.attrs)
+    return trimmed
 
 
 def _wait_for_draws(sampler, target: int, cap: int) -> bool:
@@ -290,9 +336,7 @@ def _wait_for_draws(sampler, target: int, cap: int) -> bool:
     short of them or ``target`` is the cap."""
     while sampler.progress.post_warmup().min() < target:
         if _finished(sampler):  # the callback may not have reported the last draws
-            _, stats = sampler._sampler.inspect().get_arrow_trace()
-            lengths = [batch.num_rows - _tuning_rows(batch) for batch in stats]
-            return min(lengths) >= target and target < cap
+            return _recorded_draws(sampler) >= target and target < cap
         time.sleep(_POLL_SECONDS)
     return target < cap
 
@@ -319,12 +363,36 @@ def _column(batch, name: str) -> np.ndarray:
     return column.to_numpy(zero_copy_only=False)
 
 
+def _recorded_draws(sampler) -> int:
+    """Post-warm-up draws present in the trace for every chain (after a flush when on disk)."""
+    if sampler.trace_dir is None:
+        _, stats = sampler._sampler.inspect().get_arrow_trace()
+        return min(batch.num_rows - _tuning_rows(batch) for batch in stats)
+    sampler._sampler.flush()
+    energy = _zarr_group(sampler)["sample_stats"]["energy"][...]
+    return int(np.isfinite(energy).sum(axis=1).min())
+
+
+def _zarr_group(sampler):
+    import zarr
+
+    return zarr.open_group(str(sampler.trace_dir), mode="r")
+
+
 def _draws_so_far(sampler, names: list[str], count: int) -> az.InferenceData:
     """The first ``count`` post-warm-up draws of the judged variables and the stats the
-    verdict needs, read from a copy of nutpie's arrow trace (only at checkpoints)."""
+    verdict needs: from a copy of nutpie's arrow trace, or read from the disk trace."""
+    if sampler.trace_dir is not None:
+        while _recorded_draws(sampler) < count:  # the last draws may still be in flight
+            time.sleep(_POLL_SECONDS)
+        trace = _zarr_group(sampler)
+        posterior = {name: trace["posterior"][name][:, :count] for name in names}
+        sample_stats = {name: trace["sample_stats"][name][:, :count]
+                        for name in ("diverging", "energy")}
+        return az.from_dict(posterior=posterior, sample_stats=sample_stats)
     draws, stats = sampler._sampler.inspect().get_arrow_trace()
-    posterior: dict[str, np.ndarray] = {}
-    sample_stats: dict[str, np.ndarray] = {}
+    posterior = {}
+    sample_stats = {}
     for name in names:
         per_chain = []
         for draw_batch, stat_batch in zip(draws, stats):
@@ -373,7 +441,9 @@ def add_log_likelihood(idata: az.InferenceData, model: pm.Model) -> None:
     counts = np.asarray(model["observed_count"].get_value())
     expected = np.exp(np.asarray(model["log_expected"].get_value()))
     theta = idata.posterior["relative_risk"]
-    values = poisson.logpmf(counts, expected * theta.values)
+    values = np.empty(theta.shape)
+    for chain in range(theta.shape[0]):  # one chain at a time bounds scipy's temporaries
+        values[chain] = poisson.logpmf(counts, expected * theta.values[chain])
     log_likelihood = xr.Dataset({"observed": (("chain", "draw", "area"), values)},
                                 coords={"chain": theta["chain"], "draw": theta["draw"],
                                         "area": theta["area"]})

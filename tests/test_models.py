@@ -96,6 +96,13 @@ def test_icar_edge_sum_equals_quadratic_form():
     variable = pt.dvector("u")
     value = pytensor.function([variable], pairwise_difference_log_density(variable, graph.edges))(u)
     assert value == pytest.approx(-0.5 * u @ q @ u, rel=1e-12)
+    # The gradient is -Qu, in the Python and the numba implementation (the sampler's).
+    density = pairwise_difference_log_density(variable, graph.edges)
+    for mode in ("FAST_RUN", "NUMBA"):
+        value, gradient = pytensor.function([variable], [density, pytensor.grad(density, variable)],
+                                            mode=mode)(u)
+        assert value == pytest.approx(-0.5 * u @ q @ u, rel=1e-12)
+        np.testing.assert_allclose(gradient, -q @ u, rtol=1e-12, atol=1e-12)
 
 
 def test_zero_sum_map_is_an_isometry_with_zero_component_sums():
@@ -365,6 +372,28 @@ def test_same_seed_gives_identical_draws_even_when_the_run_is_extended():
     assert first_run.attrs["stop_reason"].startswith("converged")
     verdict = assess_convergence(first_run)
     assert verdict.converged and verdict.min_ess_bulk >= 400, verdict.reasons
+
+
+def test_trace_on_disk_gives_the_same_draws_as_in_memory(monkeypatch, tmp_path):
+    # Large traces go to a zarr store on disk (sampling.DISK_TRACE_BYTES); forcing that path
+    # on a small model must change nothing but where the draws were kept.
+    import smootharea.sampling as sampling_module
+
+    study = nc_study(first=20)
+    recipe = load_recipe("poisson_gamma")
+    model = build_model(study, nc_graph(study), recipe)
+    sampling = Sampling(chains=2, draws=100, warmup=100, seed=1, cores=2)
+    in_memory = sample_posterior(model, sampling, recipe, progress=False)
+    monkeypatch.setattr(sampling_module, "DISK_TRACE_BYTES", 0)
+    monkeypatch.setattr(sampling_module.tempfile, "tempdir", str(tmp_path))
+    on_disk = sample_posterior(model, sampling, recipe, progress=False)
+    assert on_disk.attrs["stop_reason"] == in_memory.attrs["stop_reason"]
+    np.testing.assert_array_equal(on_disk.posterior["relative_risk"].values,
+                                  in_memory.posterior["relative_risk"].values)
+    np.testing.assert_array_equal(on_disk.sample_stats["diverging"].values,
+                                  in_memory.sample_stats["diverging"].values)
+    assert "gradient" not in on_disk.sample_stats
+    assert list(tmp_path.iterdir()) == []  # the disk trace is removed afterwards
 
 
 @pytest.mark.slow
