@@ -8,6 +8,7 @@ Sampling tests use short chains (2 x 500) and are marked slow.
 from __future__ import annotations
 
 import math
+import os
 
 import arviz as az
 import libpysal
@@ -394,6 +395,23 @@ def test_trace_on_disk_gives_the_same_draws_as_in_memory(monkeypatch, tmp_path):
                                   in_memory.sample_stats["diverging"].values)
     assert "gradient" not in on_disk.sample_stats
     assert list(tmp_path.iterdir()) == []  # the disk trace is removed afterwards
+
+
+def test_trace_folders_of_ended_processes_are_removed(tmp_path):
+    import subprocess
+    import sys
+
+    from smootharea.sampling import remove_orphaned_traces
+
+    ended = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"],
+                           capture_output=True, text=True, check=True)
+    orphan = tmp_path / f"smootharea-trace-{ended.stdout.strip()}-abc"
+    mine = tmp_path / f"smootharea-trace-{os.getpid()}-def"
+    other = tmp_path / "smootharea-trace-notapid-ghi"
+    for folder in (orphan, mine, other):
+        folder.mkdir()
+    assert remove_orphaned_traces(tmp_path) == [orphan]
+    assert not orphan.exists() and mine.exists() and other.exists()
 
 
 @pytest.mark.slow
