@@ -97,7 +97,7 @@ def test_icar_edge_sum_equals_quadratic_form():
     variable = pt.dvector("u")
     value = pytensor.function([variable], pairwise_difference_log_density(variable, graph.edges))(u)
     assert value == pytest.approx(-0.5 * u @ q @ u, rel=1e-12)
-    # The gradient is -Qu, in the Python and the numba implementation (the sampler's).
+    # The gradient is -Qu, in the C and the numba backend (the sampler uses numba).
     density = pairwise_difference_log_density(variable, graph.edges)
     for mode in ("FAST_RUN", "NUMBA"):
         value, gradient = pytensor.function([variable], [density, pytensor.grad(density, variable)],
