@@ -46,19 +46,13 @@ def peak_megabytes() -> float:
 
 def sampler_quality(idata) -> dict:
     """Smallest bulk/tail ESS and largest R-hat over relative risks and hyperparameters."""
-    import arviz as az
-    from smootharea.diagnostics import per_element
-    names = ["relative_risk"] + [n for n in HYPERPARAMETERS if n in idata.posterior
-                                 and float(idata.posterior[n].std()) > 0]
-    bulk = per_element(az.ess, idata.posterior, names, method="bulk")
-    tail = per_element(az.ess, idata.posterior, names, method="tail")
-    rhat = per_element(az.rhat, idata.posterior, names, method="rank")
-    smallest = lambda d: float(min(np.nanmin(d[n].values) for n in names))
-    divergences = (int(idata.sample_stats["diverging"].sum())
+    from smootharea.diagnostics import assess_convergence
+    names = ["relative_risk"] + [n for n in HYPERPARAMETERS if n in idata.posterior]
+    verdict = assess_convergence(idata, var_names=names)
+    divergences = (verdict.divergences
                    if "sample_stats" in idata.groups() and "diverging" in idata.sample_stats else None)
-    return {"min_ess_bulk": smallest(bulk), "min_ess_tail": smallest(tail),
-            "max_rhat": float(max(np.nanmax(rhat[n].values) for n in names)),
-            "divergences": divergences}
+    return {"min_ess_bulk": verdict.min_ess_bulk, "min_ess_tail": verdict.min_ess_tail,
+            "max_rhat": verdict.max_rhat, "divergences": divergences}
 
 
 def save_summary(idata, threshold: float, path: Path) -> None:

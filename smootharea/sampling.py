@@ -182,8 +182,7 @@ def _sample_until_converged(compiled, rule: StopRule, options: dict, sampling: S
                 break
     except BaseException:
         sampler.cancel()
-        sampler.progress.close()
-        _remove_trace(sampler)
+        _release(sampler)
         raise
     return _collect(sampler, kept, abort=kept < rule.cap), reason, checks
 
@@ -336,12 +335,13 @@ def _collect(sampler, kept: int, abort: bool) -> az.InferenceData:
             getattr(idata, group).load()
         return idata
     finally:
-        sampler.progress.close()
-        _remove_trace(sampler)
+        _release(sampler)
 
 
-def _remove_trace(sampler) -> None:
-    if getattr(sampler, "trace_dir", None) is not None:
+def _release(sampler) -> None:
+    """End the progress line and remove the disk trace, if any."""
+    sampler.progress.close()
+    if sampler.trace_dir is not None:
         shutil.rmtree(sampler.trace_dir, ignore_errors=True)
 
 
