@@ -164,6 +164,22 @@ def fit_references(observed, expected, covariates: pd.DataFrame | None,
         morans_i=moran, notes=tuple(notes))
 
 
+def extra_poisson_variance(observed, expected, covariates: pd.DataFrame | None) -> tuple[float, np.ndarray]:
+    """(alpha, mu): a moment estimate of alpha in Var(O_i) = mu_i + alpha mu_i^2 around the
+    Poisson GLM fit mu (statsmodels, offset log E, the job's covariates), floored at 0.
+
+    alpha = sum((O - mu)^2 - O) / sum(mu^2), the regression-based moment estimator of the
+    negative-binomial (NB2) dispersion (Cameron & Trivedi 1990, J. Econometrics 46; from
+    memory). For a lognormal random effect of SD sigma, alpha is about sigma^2.
+    """
+    observed = np.asarray(observed, dtype=float)
+    design, _ = _design(covariates, observed.size)
+    fitted = np.asarray(sm.GLM(observed, design, family=sm.families.Poisson(),
+                               offset=np.log(np.asarray(expected, dtype=float))).fit().fittedvalues)
+    alpha = float(np.sum((observed - fitted) ** 2 - observed) / np.sum(fitted**2))
+    return max(alpha, 0.0), fitted
+
+
 def marshall_global_eb(observed, expected) -> EmpiricalBayes:
     """Global method-of-moments empirical Bayes (Marshall 1991, Applied Statistics 40).
 

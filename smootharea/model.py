@@ -3,7 +3,8 @@
     O_i ~ Poisson(E_i * theta_i),   log(theta_i) = alpha + x_i' beta + b_i
 
 with log(E_i) an offset (METHODS.md section 1) and b_i the recipe's random effect
-(section 3). All random effects are non-centred. Covariates enter centred and scaled
+(section 3). The exchangeable, ICAR and BYM effects are non-centred; BYM2 is sampled as one
+combined effect with its split integrated out (smootharea.bym2_combined). Covariates enter centred and scaled
 by their SD; the posterior reports ``intercept`` and ``beta`` on the original scale.
 
 Hand-written here because no library does them the way we need:
@@ -25,6 +26,8 @@ import pytensor.tensor as pt
 import scipy.sparse as sp
 from scipy.sparse.linalg import eigsh
 
+from .bym2_combined import LATENT_NAMES as COMBINED_LATENT_NAMES
+from .bym2_combined import MixingLogDet, combined_bym2_effect, mixing_log_det, prefers_centred
 from .covariates import CovariateScaling, standardise_covariates  # noqa: F401 (re-exported)
 from .graph import NeighbourGraph
 from .recipes import Prior, Recipe
@@ -37,7 +40,7 @@ DENSE_SPECTRUM_MAX = 2000
 UNJITTERED = ("phi_distance",)
 # Per-area internals of the random effects: no output reads them, so the sampler's trace
 # leaves them out (smootharea.sampling.stored_variables).
-LATENT_INTERNALS = ("u_free", "u", "v", "v_island")
+LATENT_INTERNALS = ("u_free", "u", "v", "v_island") + COMBINED_LATENT_NAMES
 _LANCZOS_PROBES = 48
 _LANCZOS_STEPS = 60
 _DEFLATED_EIGENPAIRS = 100
@@ -62,30 +65,45 @@ def build_model(study: StudyData, graph: NeighbourGraph, recipe: Recipe) -> pm.M
         observed = pm.Data("observed_count", np.asarray(study.observed, dtype=np.int64), dims="area")
         log_expected = pm.Data("log_expected", np.log(np.asarray(study.expected, dtype=float)),
                                dims="area")
+        parameterisation = random_effect_parameterisation(study, recipe)
         if recipe.structure == "poisson_gamma":
             scaling = _poisson_gamma(study, recipe, observed, log_expected)
         else:
-            scaling = _regression(study, graph, recipe, observed, log_expected)
+            scaling = _regression(study, graph, recipe, observed, log_expected,
+                                  centred=parameterisation == "centred")
     model.covariate_scaling = scaling
     model.recipe_name = recipe.name
-    model.structure_key = structure_key(graph, recipe, study.covariate_names)
+    model.parameterisation = parameterisation
+    model.structure_key = structure_key(graph, recipe, study.covariate_names, parameterisation)
     return model
 
 
-def structure_key(graph: NeighbourGraph, recipe: Recipe, covariate_names: Sequence[str]) -> str:
+def random_effect_parameterisation(study: StudyData, recipe: Recipe) -> str:
+    """"centred" or "non-centred" for BYM2's combined effect (chosen from the data,
+    smootharea.bym2_combined.prefers_centred); "non-centred" for every other structure."""
+    if recipe.structure != "bym2":
+        return "non-centred"
+    centred = prefers_centred(study.observed, study.expected,
+                              study.covariates if study.covariate_names else None)
+    return "centred" if centred else "non-centred"
+
+
+def structure_key(graph: NeighbourGraph, recipe: Recipe, covariate_names: Sequence[str],
+                  parameterisation: str = "non-centred") -> str:
     """SHA-256 of everything that shapes the compiled model but is not data.
 
     Graph links and components, number of areas, recipe structure and priors (not its file
-    path or sampler settings, which do not enter the compiled code) and covariate names.
+    path or sampler settings, which do not enter the compiled code), covariate names and the
+    random effect's parameterisation (which new data can change, for BYM2).
     Two studies with equal keys compile to the same code.
     """
     digest = hashlib.sha256()
     recipe_content = {k: v for k, v in recipe.to_dict().items() if k not in ("source", "sampler")}
-    for part in (b"structure-v2", str(graph.n_areas).encode(),
+    for part in (b"structure-v3", str(graph.n_areas).encode(),
                  np.ascontiguousarray(graph.edges, dtype=np.int64).tobytes(),
                  np.ascontiguousarray(graph.component, dtype=np.int64).tobytes(),
                  json.dumps(recipe_content, sort_keys=True).encode(),
-                 json.dumps(list(covariate_names)).encode()):
+                 json.dumps(list(covariate_names)).encode(), parameterisation.encode()):
         digest.update(len(part).to_bytes(8, "little"))
         digest.update(part)
     return digest.hexdigest()
@@ -103,7 +121,7 @@ def _poisson_gamma(study: StudyData, recipe: Recipe, observed, log_expected) -> 
 
 
 def _regression(study: StudyData, graph: NeighbourGraph, recipe: Recipe,
-                observed, log_expected) -> CovariateScaling:
+                observed, log_expected, centred: bool = False) -> CovariateScaling:
     scaling = standardise_covariates(study)
     intercept_prior = recipe.priors["intercept"].params
     alpha = pm.Normal("intercept_standardised", mu=intercept_prior["mean"],
@@ -125,7 +143,7 @@ def _regression(study: StudyData, graph: NeighbourGraph, recipe: Recipe,
     else:
         pm.Deterministic("intercept", alpha)
 
-    effect = random_effect(graph, recipe)
+    effect = random_effect(graph, recipe, centred)
     log_theta = linear + effect
     pm.Deterministic("relative_risk", pt.exp(log_theta), dims="area")
     poisson_log_likelihood(observed, log_theta + log_expected)
@@ -144,8 +162,8 @@ def poisson_log_likelihood(observed, log_mean) -> pt.TensorVariable:
 
 # ----------------------------------------------------------------- random effects
 
-def random_effect(graph: NeighbourGraph, recipe: Recipe) -> pt.TensorVariable:
-    """b_i for the recipe's structure (METHODS.md section 3), non-centred."""
+def random_effect(graph: NeighbourGraph, recipe: Recipe, centred: bool = False) -> pt.TensorVariable:
+    """b_i for the recipe's structure (METHODS.md section 3); ``centred`` only affects BYM2."""
     n = graph.n_areas
     structure = recipe.structure
     if structure == "exchangeable":
@@ -156,9 +174,17 @@ def random_effect(graph: NeighbourGraph, recipe: Recipe) -> pt.TensorVariable:
     if layout.n_free == 0:
         raise ValueError(f"recipe {recipe.name!r} needs a neighbour graph with at least one link; "
                          "every area is an island, so use the exchangeable recipe")
-    u = icar_effect(layout)
-    island = pt.as_tensor(layout.island_mask.astype(float))
+    if structure == "bym2":
+        # Riebler et al. 2016, sampled as one combined effect (smootharea.bym2_combined);
+        # islands: sigma * v only (Freni-Sterrantino et al. 2018).
+        sigma = _sd_parameter("sigma", recipe.priors["sigma"])
+        phi, _, sqrt_one_minus_phi, spectrum = _mixing_weights(recipe.priors["phi"], graph)
+        log_det = (MixingLogDet(spectrum.gamma, ()) if spectrum is not None and spectrum.exact
+                   else mixing_log_det(graph))
+        return combined_bym2_effect(graph, layout, sigma, phi, sqrt_one_minus_phi, log_det,
+                                    centred=centred)
 
+    u = icar_effect(layout)
     if structure == "icar":
         # Scaled ICAR (sigma = typical marginal SD); islands take an exchangeable effect.
         sigma = _sd_parameter("sigma", recipe.priors["sigma"])
@@ -169,13 +195,6 @@ def random_effect(graph: NeighbourGraph, recipe: Recipe) -> pt.TensorVariable:
         sigma_unstructured = _sd_parameter("sigma_unstructured", recipe.priors["sigma_unstructured"])
         v = pm.Normal("v", 0.0, 1.0, dims="area")
         return sigma_spatial * u + sigma_unstructured * v
-    if structure == "bym2":
-        # Riebler et al. 2016; islands: sigma * v only (Freni-Sterrantino et al. 2018).
-        sigma = _sd_parameter("sigma", recipe.priors["sigma"])
-        sqrt_phi, sqrt_one_minus_phi = _mixing_weights(recipe.priors["phi"], graph)
-        v = pm.Normal("v", 0.0, 1.0, dims="area")
-        unstructured_weight = island + (1.0 - island) * sqrt_one_minus_phi
-        return sigma * (unstructured_weight * v + sqrt_phi * layout.inverse_sqrt_scaling * u)
     raise ValueError(f"unknown structure {structure!r}")  # recipes.py validates; defensive
 
 
@@ -186,22 +205,27 @@ def _sd_parameter(name: str, prior: Prior) -> pt.TensorVariable:
     return pm.Exponential(name, lam=prior.exponential_rate)
 
 
-def _mixing_weights(prior: Prior, graph: NeighbourGraph) -> tuple[pt.TensorVariable, pt.TensorVariable]:
-    """sqrt(phi) and sqrt(1 - phi) for BYM2, with phi in the posterior as ``phi``."""
+def _mixing_weights(prior: Prior, graph: NeighbourGraph):
+    """(phi, sqrt(phi), sqrt(1 - phi), spectrum) for BYM2, with phi in the posterior as ``phi``.
+
+    The square roots are computed from logit(phi) so they stay finite (with finite gradients)
+    when phi is 1 to machine precision. ``spectrum`` is None when phi is fixed.
+    """
     if prior.kind == "fixed":
         phi = pm.Deterministic("phi", pt.as_tensor(prior.params["value"]))
-        return pt.sqrt(phi), pt.sqrt(1.0 - phi)
+        return phi, pt.sqrt(phi), pt.sqrt(1.0 - phi), None
     spectrum = mixing_spectrum(graph)
     rate = pc_mixing_rate(spectrum, prior.params["threshold"], prior.params["probability_below"])
     # The PC prior by its definition: the distance d(phi) is Exponential(lambda).
     # Chains start at d(threshold) (phi = 0.5 by default) without jitter (UNJITTERED): a
-    # start deep in the prior's tail, where phi is 1 to machine precision and v no longer
-    # touches the likelihood, is a plateau a chain can take long to leave.
+    # start deep in the prior's tail, where phi is 1 to machine precision, is a plateau a
+    # chain can take long to leave.
     start = float(mixing_distance(prior.params["threshold"], spectrum))
     distance = pm.Exponential("phi_distance", lam=rate, initval=start)
     logit_phi = logit_mixing_from_distance(distance, spectrum)
-    pm.Deterministic("phi", pt.sigmoid(logit_phi))
-    return pt.exp(-0.5 * pt.softplus(-logit_phi)), pt.exp(-0.5 * pt.softplus(logit_phi))
+    phi = pm.Deterministic("phi", pt.sigmoid(logit_phi))
+    return (phi, pt.exp(-0.5 * pt.softplus(-logit_phi)), pt.exp(-0.5 * pt.softplus(logit_phi)),
+            spectrum)
 
 
 def _island_effect(layout: "IcarLayout", n: int) -> pt.TensorVariable:

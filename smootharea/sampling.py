@@ -116,6 +116,7 @@ def sample_posterior(model: pm.Model, sampling: Sampling, recipe: Recipe,
     idata.attrs.update({"recipe": recipe.name, "seed": int(sampling.seed),
                         "chains": int(sampling.chains), "draws": kept,
                         "draws_minimum": int(sampling.draws), "warmup": int(sampling.warmup),
+                        "parameterisation": getattr(model, "parameterisation", "non-centred"),
                         **record})
     return idata
 
@@ -141,7 +142,7 @@ def sampling_record(idata: az.InferenceData) -> dict[str, Any]:
     """What the sampler did, for model.json: draws kept per chain, the minimum and cap,
     why it stopped, and whether the compiled model was reused."""
     keys = ("sampler", "chains", "warmup", "draws", "draws_minimum", "draws_cap", "stop_reason",
-            "checks", "compiled_from", "compile_seconds", "sampling_seconds")
+            "checks", "compiled_from", "compile_seconds", "sampling_seconds", "parameterisation")
     return {key: idata.attrs[key] for key in keys if key in idata.attrs}
 
 

@@ -197,6 +197,111 @@ def test_lanczos_spectrum_agrees_with_exact_on_a_larger_graph(monkeypatch):
             float(mixing_distance(phi, exact)), rel=0.05)
 
 
+# ------------------------------------------- BYM2 as one combined effect
+
+def scaled_bym2_covariance(graph, sigma: float, phi: float) -> np.ndarray:
+    """sigma^2 ((1 - phi) I + phi R^-) per component, R^- = Q^+ / s from numpy.linalg.pinv
+    (Riebler et al. 2016, section 3); islands sigma^2 (Freni-Sterrantino et al. 2018)."""
+    n = graph.n_areas
+    covariance = np.zeros((n, n))
+    for label, members in enumerate(graph.components):
+        if members.size == 1:
+            covariance[members[0], members[0]] = sigma**2
+            continue
+        local = {a: k for k, a in enumerate(members)}
+        edges = [(local[i], local[j]) for i, j in graph.edges if i in local and j in local]
+        pinv = np.linalg.pinv(dense_laplacian(members.size, edges))
+        scale = math.exp(np.mean(np.log(np.diag(pinv))))
+        covariance[np.ix_(members, members)] = sigma**2 * (
+            (1 - phi) * np.eye(members.size) + phi * pinv / scale)
+    return covariance
+
+
+def test_combined_bym2_density_is_the_bym2_gaussian_with_components_and_island():
+    # Reference: scipy.stats.multivariate_normal with the BYM2 covariance built densely from
+    # numpy's pseudo-inverse. The model samples b as (sum-to-zero part, one mean per component,
+    # islands); its log density, with the Jacobian of that linear map, must equal the dense
+    # Gaussian up to one constant for every sigma, phi and b.
+    study = nc_study(first=20)
+    graph = split_graph(study)
+    rng = np.random.default_rng(11)
+    differences = []
+    for sigma, phi in ((0.3, 0.2), (0.8, 0.7), (1.5, 0.999), (0.5, 1e-3)):
+        recipe = (load_recipe("bym2").with_prior("sigma", "fixed", value=sigma)
+                  .with_prior("phi", "fixed", value=phi))
+        model = build_model(study, graph, recipe)
+        terms = model.replace_rvs_by_values(
+            [model["combined_bym2"], model.logp(vars=[model["effect_component_mean"],
+                                                      model["v_island"]], sum=True)])
+        log_b = pt.log(model.replace_rvs_by_values([model["relative_risk"]])[0])
+        evaluate = model.compile_fn([terms[0] + terms[1], log_b], inputs=model.value_vars,
+                                    on_unused_input="ignore", point_fn=False)
+        for _ in range(3):
+            point = {v.name: rng.normal(size=model.initial_point()[v.name].shape)
+                     for v in model.value_vars}
+            point["intercept_standardised"] = np.array(0.0)
+            density, b = evaluate(**point)
+            jacobian = 2 * math.log(sigma * math.sqrt(1 - phi)) + math.log(sigma)
+            reference = stats.multivariate_normal(np.zeros(graph.n_areas),
+                                                  scaled_bym2_covariance(graph, sigma, phi)).logpdf(b)
+            differences.append(density - jacobian - reference)
+    # The solve stops at relative residual 1e-6; the value's error is quadratic in that but
+    # scaled by 1 / sigma^2 and by M's conditioning (worst at phi = 1e-3): measured 5e-7.
+    assert np.ptp(differences) < 2e-6
+
+
+def test_combined_quadratic_form_and_gradient_match_dense_algebra():
+    # q = b' Q M^-1 b with M = (1 - phi) Q + phi S and its gradients, against dense numpy
+    # solves (value, d/db) and a central difference (d/dphi), in the numba backend the
+    # sampler uses and in Python; phi near 0, in the middle, near 1 and at 1.
+    from smootharea.bym2_combined import CombinedLayout, quadratic_form
+    study = nc_study()
+    graph = nc_graph(study)
+    layout = CombinedLayout.from_graph(graph)
+    q = dense_laplacian(graph.n_areas, graph.edges)
+    s_inverse = np.diag(layout.inverse_scaling)
+    b = np.random.default_rng(5).normal(size=graph.n_areas)
+    b -= b.mean()
+    b_var, phi_var = pt.dvector("b"), pt.dscalar("phi")
+    form = quadratic_form(b_var, phi_var, layout)
+    gradients = pytensor.grad(form, [b_var, phi_var])
+    for mode in ("NUMBA", "FAST_COMPILE"):
+        evaluate = pytensor.function([b_var, phi_var], [form, *gradients], mode=mode)
+        for phi in (1e-4, 0.3, 0.8, 1 - 1e-9, 1.0):
+            m = (1 - phi) * q + phi * s_inverse
+            solved = np.linalg.solve(m, b)
+            value, gradient_b, gradient_phi = evaluate(b, phi)
+            assert value == pytest.approx(b @ q @ solved, rel=1e-10)
+            # The gradient carries the solver's error itself (relative residual 1e-6, times
+            # M's conditioning near phi = 0); the value's error is quadratic in it.
+            exact = 2 * q @ solved
+            assert np.linalg.norm(gradient_b - exact) < 1e-4 * np.linalg.norm(exact)
+            # M stays positive definite a little beyond phi = 1, so a central difference works there.
+            h = min(1e-6, phi / 10)
+            dense = lambda p: b @ q @ np.linalg.solve((1 - p) * q + p * s_inverse, b)  # noqa: E731
+            numeric = (dense(phi + h) - dense(phi - h)) / (2 * h)
+            assert gradient_phi == pytest.approx(numeric, rel=1e-4, abs=1e-4)
+
+
+def test_chebyshev_log_determinant_matches_exact_eigenvalues():
+    # The large-component path (a few exact small eigenvalues, a Chebyshev interpolant for the
+    # rest) against the exact spectrum from numpy eigvalsh, on all 100 NC counties; the term
+    # only matters up to a constant in phi, so differences from phi = 0.5 are compared.
+    from smootharea.bym2_combined import mixing_log_det
+    graph = nc_graph(nc_study())
+    exact = mixing_log_det(graph)
+    interpolated = mixing_log_det(graph, dense_max=10)
+    assert not exact.chebyshev and len(interpolated.chebyshev) == 1
+    for phi in (1e-6, 1e-3, 0.05, 0.3, 0.7, 0.95, 1 - 1e-9, 1.0):
+        assert interpolated.numpy(phi) - interpolated.numpy(0.5) == pytest.approx(
+            exact.numpy(phi) - exact.numpy(0.5), abs=1e-8)
+    phi = pt.dscalar("phi")
+    slope = pytensor.function([phi], pytensor.grad(interpolated.tensor(phi), phi))
+    for value in (0.01, 0.5, 0.99):
+        numeric = (interpolated.numpy(value + 1e-6) - interpolated.numpy(value - 1e-6)) / 2e-6
+        assert slope(value) == pytest.approx(numeric, rel=1e-5)
+
+
 # --------------------------------------------------------------- model contract
 
 def test_every_recipe_builds_with_the_named_variables():
@@ -204,7 +309,7 @@ def test_every_recipe_builds_with_the_named_variables():
     graph = split_graph(study)
     expected_free = {"exchangeable": {"sigma"}, "icar": {"sigma"},
                      "bym": {"sigma_spatial", "sigma_unstructured"},
-                     "bym2": {"sigma", "phi_distance"}}
+                     "bym2": {"sigma", "phi_distance", "effect_free", "effect_component_mean"}}
     for name, hyper in expected_free.items():
         model = build_model(study, graph, load_recipe(name))
         names = set(model.named_vars)
@@ -314,7 +419,8 @@ def test_island_and_two_components_sample_with_exact_zero_sums(name):
     idata = sample_posterior(build_model(study, graph, recipe),
                              Sampling(chains=2, draws=300, warmup=300, seed=7, cores=2),
                              recipe, progress=False, max_draws=300, keep_latent=True)
-    u = idata.posterior["u"].values
+    # bym2 samples the combined effect; its sum-to-zero part is ``effect_within``.
+    u = idata.posterior["u" if name == "bym" else "effect_within"].values
     for members in graph.components:
         sums = u[..., members].sum(axis=-1)
         assert np.abs(sums).max() < 1e-9
