@@ -458,6 +458,24 @@ def test_draw_counter_reads_post_warmup_draws_from_progress_text():
     assert counter.post_warmup().tolist() == [200, 0, 0]
 
 
+def test_chains_in_batches_of_the_core_count_are_reproducible_and_distinct():
+    # 3 chains on 2 cores: a batch of 2 chains and a batch of 1 (sampling._start_batches),
+    # run in turn; the joined trace has chains 0, 1, 2, the same seed gives the same draws,
+    # and the second batch's chain is not a copy of the first batch's chain 0 (own seed).
+    study = nc_study(first=20)
+    recipe = load_recipe("poisson_gamma")
+    model = build_model(study, nc_graph(study), recipe)
+    sampling = Sampling(chains=3, draws=100, warmup=100, seed=1, cores=2)
+    first = sample_posterior(model, sampling, recipe, progress=False)
+    second = sample_posterior(model, sampling, recipe, progress=False)
+    draws = first.posterior["relative_risk"]
+    assert draws.coords["chain"].values.tolist() == [0, 1, 2]
+    np.testing.assert_array_equal(draws.values, second.posterior["relative_risk"].values)
+    assert not np.array_equal(draws.values[0], draws.values[2])
+    assert first.sample_stats.sizes["chain"] == 3
+    assert first.attrs["stop_reason"].startswith(("converged", "reached the cap"))
+
+
 def test_same_seed_gives_identical_draws_even_when_the_run_is_extended():
     # 2 chains x 100 draws cannot reach bulk ESS 400, so the run is extended (the same
     # chains keep drawing, sampling.py); extension and stopping depend only on the draws.
