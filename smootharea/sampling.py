@@ -203,14 +203,20 @@ def _start_batches(compiled, cap: int, sampling: Sampling, options: dict) -> lis
     peers: list[DrawCounter] = []
     batches = []
     on_disk = trace_bytes(compiled, sampling.chains, options["tune"] + cap) > DISK_TRACE_BYTES
-    for index, size in enumerate(sizes):
-        seed = options["seed"] if index == 0 else _batch_seed(options["seed"], index)
-        batch = _start_sampler(compiled, draws=cap, cores=size,
-                               **{**options, "chains": size, "seed": seed}, peers=peers,
-                               on_disk=on_disk)
-        if index > 0:
-            batch.pause()
-        batches.append(batch)
+    try:
+        for index, size in enumerate(sizes):
+            seed = options["seed"] if index == 0 else _batch_seed(options["seed"], index)
+            batch = _start_sampler(compiled, draws=cap, cores=size,
+                                   **{**options, "chains": size, "seed": seed}, peers=peers,
+                                   on_disk=on_disk)
+            if index > 0:
+                batch.pause()
+            batches.append(batch)
+    except BaseException:
+        for batch in batches:
+            batch.cancel()
+            _release(batch)
+        raise
     return batches
 
 

@@ -7,6 +7,7 @@ Sampling tests use short chains (2 x 500) and are marked slow.
 """
 from __future__ import annotations
 
+import dataclasses
 import math
 import os
 
@@ -281,6 +282,21 @@ def test_combined_quadratic_form_and_gradient_match_dense_algebra():
             dense = lambda p: b @ q @ np.linalg.solve((1 - p) * q + p * s_inverse, b)  # noqa: E731
             numeric = (dense(phi + h) - dense(phi - h)) / (2 * h)
             assert gradient_phi == pytest.approx(numeric, rel=1e-4, abs=1e-4)
+
+
+def test_bym2_parameterisation_follows_the_extra_poisson_variation():
+    # North Carolina SIDS 1974 has clear extra-Poisson variation (Pearson chi2 / df 2.28 from
+    # statsmodels' GLM, as `smootharea check` reports): centred. The same expected counts
+    # with counts equal to them (rounded) have none: non-centred, and a different compiled model.
+    from smootharea.model import random_effect_parameterisation
+    study = nc_study()
+    recipe = load_recipe("bym2")
+    assert random_effect_parameterisation(study, recipe) == "centred"
+    flat = dataclasses.replace(study, observed=np.round(study.expected).astype(np.int64))
+    assert random_effect_parameterisation(flat, recipe) == "non-centred"
+    assert random_effect_parameterisation(study, load_recipe("bym")) == "non-centred"
+    graph = nc_graph(study)
+    assert build_model(study, graph, recipe).structure_key != build_model(flat, graph, recipe).structure_key
 
 
 def test_chebyshev_log_determinant_matches_exact_eigenvalues():
