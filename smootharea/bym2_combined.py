@@ -297,13 +297,7 @@ def _clenshaw(x, coefficients: np.ndarray):
 def mixing_log_det(graph: NeighbourGraph, dense_max: int = DENSE_SPECTRUM_MAX) -> MixingLogDet:
     """The log-determinant term of the combined BYM2 density for every component of ``graph``."""
     gammas, series = [np.empty(0)], []
-    adjacency = graph.adjacency
-    for label, members in enumerate(graph.components):
-        if members.size < 2:
-            continue
-        scale = float(graph.scaling_factors[label])
-        sub = adjacency[members][:, members]
-        laplacian = (sp.diags(np.asarray(sub.sum(axis=1)).ravel()) - sub).tocsc()
+    for members, scale, laplacian in graph.component_laplacians():
         if members.size <= dense_max:
             gammas.append(1.0 / (scale * np.linalg.eigvalsh(laplacian.toarray())[1:]))
             continue

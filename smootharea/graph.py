@@ -88,6 +88,17 @@ class NeighbourGraph:
         """Symmetric 0/1 adjacency matrix W (sparse CSR, n x n)."""
         return _adjacency(self.n_areas, self.edges)
 
+    def component_laplacians(self):
+        """(members, scaling factor, Laplacian D - W as sparse CSC) for each component with at
+        least 2 areas, in the order of :attr:`components`."""
+        adjacency = self.adjacency
+        for label, members in enumerate(self.components):
+            if members.size < 2:
+                continue
+            sub = adjacency[members][:, members]
+            laplacian = (sp.diags(np.asarray(sub.sum(axis=1)).ravel()) - sub).tocsc()
+            yield members, float(self.scaling_factors[label]), laplacian
+
     def neighbours_of(self, index: int) -> np.ndarray:
         """Indices of the neighbours of area ``index``."""
         adjacency = self.adjacency

@@ -178,7 +178,7 @@ def random_effect(graph: NeighbourGraph, recipe: Recipe, centred: bool = False) 
         # Riebler et al. 2016, sampled as one combined effect (smootharea.bym2_combined);
         # islands: sigma * v only (Freni-Sterrantino et al. 2018).
         sigma = _sd_parameter("sigma", recipe.priors["sigma"])
-        phi, _, sqrt_one_minus_phi, spectrum = _mixing_weights(recipe.priors["phi"], graph)
+        phi, sqrt_one_minus_phi, spectrum = _mixing_weights(recipe.priors["phi"], graph)
         log_det = (MixingLogDet(spectrum.gamma, ()) if spectrum is not None and spectrum.exact
                    else mixing_log_det(graph))
         return combined_bym2_effect(graph, layout, sigma, phi, sqrt_one_minus_phi, log_det,
@@ -206,14 +206,14 @@ def _sd_parameter(name: str, prior: Prior) -> pt.TensorVariable:
 
 
 def _mixing_weights(prior: Prior, graph: NeighbourGraph):
-    """(phi, sqrt(phi), sqrt(1 - phi), spectrum) for BYM2, with phi in the posterior as ``phi``.
+    """(phi, sqrt(1 - phi), spectrum) for BYM2, with phi in the posterior as ``phi``.
 
-    The square roots are computed from logit(phi) so they stay finite (with finite gradients)
+    The square root is computed from logit(phi) so it stays finite (with a finite gradient)
     when phi is 1 to machine precision. ``spectrum`` is None when phi is fixed.
     """
     if prior.kind == "fixed":
         phi = pm.Deterministic("phi", pt.as_tensor(prior.params["value"]))
-        return phi, pt.sqrt(phi), pt.sqrt(1.0 - phi), None
+        return phi, pt.sqrt(1.0 - phi), None
     spectrum = mixing_spectrum(graph)
     rate = pc_mixing_rate(spectrum, prior.params["threshold"], prior.params["probability_below"])
     # The PC prior by its definition: the distance d(phi) is Exponential(lambda).
@@ -224,8 +224,7 @@ def _mixing_weights(prior: Prior, graph: NeighbourGraph):
     distance = pm.Exponential("phi_distance", lam=rate, initval=start)
     logit_phi = logit_mixing_from_distance(distance, spectrum)
     phi = pm.Deterministic("phi", pt.sigmoid(logit_phi))
-    return (phi, pt.exp(-0.5 * pt.softplus(-logit_phi)), pt.exp(-0.5 * pt.softplus(logit_phi)),
-            spectrum)
+    return phi, pt.exp(-0.5 * pt.softplus(logit_phi)), spectrum
 
 
 def _island_effect(layout: "IcarLayout", n: int) -> pt.TensorVariable:
@@ -369,13 +368,7 @@ def mixing_spectrum(graph: NeighbourGraph) -> MixingSpectrum:
     38), whose weighted sums estimate the spectral sums (a few per cent Monte Carlo error).
     """
     gammas, weights, exact, null_count = [np.empty(0)], [np.empty(0)], True, 0
-    adjacency = graph.adjacency
-    for label, members in enumerate(graph.components):
-        if members.size < 2:
-            continue
-        scale = float(graph.scaling_factors[label])
-        sub = adjacency[members][:, members]
-        laplacian = sp.diags(np.asarray(sub.sum(axis=1)).ravel()) - sub
+    for label, (members, scale, laplacian) in enumerate(graph.component_laplacians()):
         if members.size <= DENSE_SPECTRUM_MAX:
             eigenvalues = np.linalg.eigvalsh(laplacian.toarray())[1:]
             node_weights = np.ones(eigenvalues.size)

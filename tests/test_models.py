@@ -474,13 +474,18 @@ def test_draw_counter_reads_post_warmup_draws_from_progress_text():
     assert counter.post_warmup().tolist() == [200, 0, 0]
 
 
+def small_conjugate_model():
+    """Poisson-Gamma on the first 20 NC counties: quick to sample, for the sampler's own tests."""
+    study = nc_study(first=20)
+    recipe = load_recipe("poisson_gamma")
+    return build_model(study, nc_graph(study), recipe), recipe
+
+
 def test_chains_in_batches_of_the_core_count_are_reproducible_and_distinct():
     # 3 chains on 2 cores: a batch of 2 chains and a batch of 1 (sampling._start_batches),
     # run in turn; the joined trace has chains 0, 1, 2, the same seed gives the same draws,
     # and the second batch's chain is not a copy of the first batch's chain 0 (own seed).
-    study = nc_study(first=20)
-    recipe = load_recipe("poisson_gamma")
-    model = build_model(study, nc_graph(study), recipe)
+    model, recipe = small_conjugate_model()
     sampling = Sampling(chains=3, draws=100, warmup=100, seed=1, cores=2)
     first = sample_posterior(model, sampling, recipe, progress=False)
     second = sample_posterior(model, sampling, recipe, progress=False)
@@ -496,9 +501,7 @@ def test_same_seed_gives_identical_draws_even_when_the_run_is_extended():
     # 2 chains x 100 draws cannot reach bulk ESS 400, so the run is extended (the same
     # chains keep drawing, sampling.py); extension and stopping depend only on the draws.
     # With only 100 warm-up steps some seeds need more than the 800-draw cap (seed 99 did).
-    study = nc_study(first=20)
-    recipe = load_recipe("poisson_gamma")
-    model = build_model(study, nc_graph(study), recipe)
+    model, recipe = small_conjugate_model()
     sampling = Sampling(chains=2, draws=100, warmup=100, seed=1, cores=2)
     first_run = sample_posterior(model, sampling, recipe, progress=False)
     first = first_run.posterior["relative_risk"]
@@ -520,9 +523,7 @@ def test_trace_on_disk_gives_the_same_draws_as_in_memory(monkeypatch, tmp_path):
     # on a small model must change nothing but where the draws were kept.
     import smootharea.sampling as sampling_module
 
-    study = nc_study(first=20)
-    recipe = load_recipe("poisson_gamma")
-    model = build_model(study, nc_graph(study), recipe)
+    model, recipe = small_conjugate_model()
     sampling = Sampling(chains=2, draws=100, warmup=100, seed=1, cores=2)
     in_memory = sample_posterior(model, sampling, recipe, progress=False)
     monkeypatch.setattr(sampling_module, "DISK_TRACE_BYTES", 0)
