@@ -56,8 +56,9 @@ def sampler_quality(idata) -> dict:
 
 
 def save_summary(idata, threshold: float, path: Path) -> None:
-    draws = idata.posterior["relative_risk"].stack(s=("chain", "draw")).transpose("s", ...).values
-    np.savez(path, mean=draws.mean(axis=0), exceedance=(draws > threshold).mean(axis=0))
+    draws = idata.posterior["relative_risk"]  # no stacked copy: 1.2 GB at 30,000 areas
+    np.savez(path, mean=draws.mean(("chain", "draw")).values,
+             exceedance=(draws > threshold).mean(("chain", "draw")).values)
 
 
 def detect_cache() -> str | None:

@@ -124,8 +124,8 @@ recipe = "bym2"
 
 [sampling]
 chains = 4
-draws = 1000
-warmup = 1000
+draws = 500
+warmup = 300
 seed = {seed}
 
 [report]

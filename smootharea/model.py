@@ -20,14 +20,15 @@ import json
 from dataclasses import dataclass
 from typing import Sequence
 
+import numba
 import numpy as np
 import pymc as pm
 import pytensor.tensor as pt
 import scipy.sparse as sp
-from scipy.sparse.linalg import eigsh
 
 from .bym2_combined import LATENT_NAMES as COMBINED_LATENT_NAMES
-from .bym2_combined import MixingLogDet, combined_bym2_effect, mixing_log_det, prefers_centred
+from .bym2_combined import (EXACT_SMALL_EIGENVALUES, MixingLogDet, combined_bym2_effect,
+                             mixing_log_det, prefers_centred)
 from .covariates import CovariateScaling, standardise_covariates  # noqa: F401 (re-exported)
 from .graph import NeighbourGraph
 from .recipes import Prior, Recipe
@@ -43,7 +44,6 @@ UNJITTERED = ("phi_distance",)
 LATENT_INTERNALS = ("u_free", "u", "v", "v_island") + COMBINED_LATENT_NAMES
 _LANCZOS_PROBES = 48
 _LANCZOS_STEPS = 60
-_DEFLATED_EIGENPAIRS = 100
 
 
 # --------------------------------------------------------------------------- builder
@@ -373,7 +373,7 @@ def mixing_spectrum(graph: NeighbourGraph) -> MixingSpectrum:
             eigenvalues = np.linalg.eigvalsh(laplacian.toarray())[1:]
             node_weights = np.ones(eigenvalues.size)
         else:
-            eigenvalues, node_weights = _lanczos_quadrature(laplacian.tocsr(), seed=label)
+            eigenvalues, node_weights = _lanczos_quadrature(graph, members, laplacian, seed=label)
             exact = False
         gammas.append(1.0 / (scale * eigenvalues))
         weights.append(node_weights)
@@ -381,7 +381,8 @@ def mixing_spectrum(graph: NeighbourGraph) -> MixingSpectrum:
     return MixingSpectrum(np.concatenate(gammas), np.concatenate(weights), null_count, exact)
 
 
-def _lanczos_quadrature(laplacian: sp.csr_matrix, seed: int) -> tuple[np.ndarray, np.ndarray]:
+def _lanczos_quadrature(graph: NeighbourGraph, members: np.ndarray, laplacian: sp.csc_matrix,
+                        seed: int) -> tuple[np.ndarray, np.ndarray]:
     """Nodes and weights with sum_j w_j f(node_j) ~ sum of f over the non-zero eigenvalues.
 
     The smallest eigenvalues (largest gamma, which dominate the distance for small phi) are
@@ -390,10 +391,9 @@ def _lanczos_quadrature(laplacian: sp.csr_matrix, seed: int) -> tuple[np.ndarray
     orthogonal to the constant vector and the deflated eigenvectors.
     """
     n = laplacian.shape[0]
-    n_exact = min(_DEFLATED_EIGENPAIRS, (n - 1) // 4)
-    values, vectors = eigsh(laplacian.tocsc(), k=n_exact + 1, sigma=-1e-3, which="LM")
-    order = np.argsort(values)
-    exact_values, exact_vectors = values[order][1:], vectors[:, order][:, 1:]
+    n_exact = min(EXACT_SMALL_EIGENVALUES, (n - 1) // 4)
+    exact_values, exact_vectors = graph.smallest_laplacian_eigenpairs(members, laplacian, n_exact)
+    laplacian = laplacian.tocsr()
     known = np.column_stack([np.full(n, 1 / np.sqrt(n)), exact_vectors])
 
     def project(w: np.ndarray) -> np.ndarray:
@@ -427,49 +427,61 @@ def _lanczos_quadrature(laplacian: sp.csr_matrix, seed: int) -> tuple[np.ndarray
     return np.concatenate(nodes), np.concatenate(weights)
 
 
-def _ops(x):
-    return pt if isinstance(x, pt.Variable) else np
+def mixing_kld_logit(y, spectrum: MixingSpectrum) -> np.ndarray:
+    """KLD as a function of y = logit(phi), stable for phi near 0 and near 1 (one value per
+    element of y)."""
+    return _kld_and_slope(y, spectrum)[0]
 
 
-def mixing_kld_logit(y, spectrum: MixingSpectrum):
-    """KLD as a function of y = logit(phi), stable for phi near 0 and near 1 (numpy or pytensor)."""
-    lib = _ops(y)
-    gamma, weight = _constants(lib, spectrum.gamma, spectrum.weight)
-    phi = lib.exp(-_softplus(-y))
-    x = phi * (gamma - 1.0)
-    # log(1 + phi (g - 1)) = log(1 + g e^y) - log(1 + e^y), no cancellation as phi -> 1.
-    log_variance = lib.logaddexp(0.0, lib.log(gamma) + y) - _softplus(y)
-    small = lib.abs(x) < 1e-4
-    series = x**2 / 2 - x**3 / 3 + x**4 / 4   # x - log1p(x) loses digits for small x
-    terms = (pt.switch if lib is pt else np.where)(small, series, x - log_variance)
-    null_terms = _softplus(y) - phi              # gamma = 0: -phi - log(1 - phi)
-    return 0.5 * (lib.sum(weight * terms) + spectrum.null_count * null_terms)
-
-
-def _kld_logit_slope(y, spectrum: MixingSpectrum):
+def _kld_logit_slope(y, spectrum: MixingSpectrum) -> np.ndarray:
     """dKLD/dy = 0.5 phi^2 (1 - phi) [sum_k w_k (g_k - 1)^2 / (1 + phi (g_k - 1)) ] + 0.5 phi^2 n0."""
-    lib = _ops(y)
-    phi = lib.exp(-_softplus(-y))
-    one_minus = lib.exp(-_softplus(y))
-    gamma, weight = _constants(lib, spectrum.gamma, spectrum.weight)
-    deviation = gamma - 1.0
-    ratio = lib.sum(weight * deviation**2 / (1.0 + phi * deviation))
-    return 0.5 * phi**2 * (one_minus * ratio + spectrum.null_count)
+    return _kld_and_slope(y, spectrum)[1]
 
 
-def _constants(lib, *arrays):
-    return tuple(pt.as_tensor(a) for a in arrays) if lib is pt else arrays
+def _kld_and_slope(y, spectrum: MixingSpectrum) -> tuple[np.ndarray, np.ndarray]:
+    y = np.asarray(y, dtype=float)
+    kld, slope = _kld_and_slope_kernel(y.ravel(), spectrum.gamma, spectrum.weight,
+                                       float(spectrum.null_count))
+    return kld.reshape(y.shape), slope.reshape(y.shape)
 
 
-def _softplus(y):
-    return pt.softplus(y) if isinstance(y, pt.Variable) else np.logaddexp(0.0, y)
+@numba.njit(cache=True)
+def _kld_and_slope_kernel(ys, gamma, weight, null_count):
+    """KLD(y) and dKLD/dy for each y, summed over the spectrum in one pass: the inverse-distance
+    table needs 8,400 values over up to 3,000 nodes, which numpy's temporaries made take
+    seconds."""
+    kld = np.empty(ys.size)
+    slope = np.empty(ys.size)
+    log_gamma = np.log(gamma)
+    for j in range(ys.size):
+        y = ys[j]
+        softplus_y = max(y, 0.0) + np.log1p(np.exp(-abs(y)))
+        phi = np.exp(y - softplus_y)
+        one_minus = np.exp(-softplus_y)
+        total = 0.0
+        ratio = 0.0
+        for k in range(gamma.size):
+            deviation = gamma[k] - 1.0
+            x = phi * deviation
+            if abs(x) < 1e-4:  # x - log1p(x) loses digits for small x
+                term = x * x * (0.5 - x * (1.0 / 3.0 - 0.25 * x))
+            else:
+                # log(1 + phi (g - 1)) = log(1 + g e^y) - log(1 + e^y), no cancellation as phi -> 1
+                z = log_gamma[k] + y
+                term = x - (max(z, 0.0) + np.log1p(np.exp(-abs(z))) - softplus_y)
+            total += weight[k] * term
+            ratio += weight[k] * deviation * deviation / (1.0 + phi * deviation)
+        # gamma = 0 (one per component): -phi - log(1 - phi)
+        kld[j] = 0.5 * (total + null_count * (softplus_y - phi))
+        slope[j] = 0.5 * phi * phi * (one_minus * ratio + null_count)
+    return kld, slope
 
 
 def mixing_distance(phi, spectrum: MixingSpectrum):
     """d(phi) = sqrt(2 KLD(phi)) for phi in (0, 1) (numpy)."""
     phi = np.asarray(phi, dtype=float)
     y = np.log(phi) - np.log1p(-phi)
-    return np.sqrt(2.0 * np.vectorize(lambda v: mixing_kld_logit(v, spectrum))(y))
+    return np.sqrt(2.0 * mixing_kld_logit(y, spectrum))
 
 
 def pc_mixing_rate(spectrum: MixingSpectrum, threshold: float, probability_below: float) -> float:
@@ -484,8 +496,7 @@ def pc_mixing_log_density(phi, spectrum: MixingSpectrum, rate: float) -> np.ndar
     """log pi(phi) = log(lambda) - lambda d(phi) + log d'(phi) (numpy; for checks and plots)."""
     phi = np.asarray(phi, dtype=float)
     y = np.log(phi) - np.log1p(-phi)
-    kld = np.vectorize(lambda v: mixing_kld_logit(v, spectrum))(y)
-    slope_y = np.vectorize(lambda v: _kld_logit_slope(v, spectrum))(y)
+    kld, slope_y = _kld_and_slope(y, spectrum)
     distance = np.sqrt(2.0 * kld)
     # d'(phi) = KLD'(y) / (d * phi * (1 - phi))
     log_slope = np.log(slope_y) - np.log(distance) - np.log(phi) - np.log1p(-phi)
@@ -510,8 +521,7 @@ def inverse_distance_table(spectrum: MixingSpectrum) -> InverseDistanceTable:
     """Exact values and slopes of y(log d) at the knots _GRID (numpy, once per graph).
 
     log d = 0.5 log(2 KLD(y)), so dy/dlog d = 2 KLD(y) / KLD'(y)."""
-    kld = np.array([mixing_kld_logit(y, spectrum) for y in _GRID])
-    slope_y = np.array([_kld_logit_slope(y, spectrum) for y in _GRID])
+    kld, slope_y = _kld_and_slope(_GRID, spectrum)
     keep = np.concatenate([[True], np.diff(0.5 * np.log(2.0 * kld)) > 0])  # strictly increasing
     return InverseDistanceTable(0.5 * np.log(2.0 * kld[keep]), _GRID[keep],
                                 (2.0 * kld / slope_y)[keep])
@@ -551,6 +561,6 @@ def describe_mixing_spectrum(spectrum: MixingSpectrum) -> str:
     if spectrum.exact:
         return "PC prior for phi: exact eigenvalues of every component's scaled ICAR precision"
     return ("PC prior for phi: spectrum of components above "
-            f"{DENSE_SPECTRUM_MAX} areas: {_DEFLATED_EIGENPAIRS} smallest eigenvalues exact, "
+            f"{DENSE_SPECTRUM_MAX} areas: {EXACT_SMALL_EIGENVALUES} smallest eigenvalues exact, "
             f"the rest by stochastic Lanczos quadrature ({_LANCZOS_PROBES} probes x "
             f"{_LANCZOS_STEPS} steps)")

@@ -30,7 +30,7 @@ import tempfile
 import time
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import Any, Sequence
 
 import arviz as az
 import numpy as np
@@ -96,23 +96,21 @@ def sample_posterior(model: pm.Model, sampling: Sampling, recipe: Recipe,
         options = dict(tune=sampling.warmup, chains=sampling.chains, seed=sampling.seed,
                        target_accept=recipe.sampler.target_accept,
                        low_rank=recipe.sampler.low_rank_mass_matrix, show_progress=show_progress)
+        unread = () if keep_latent else LATENT_INTERNALS
         if cap > sampling.draws and sampling.chains >= 2:  # one chain can never pass R-hat
             rule = StopRule(minimum=sampling.draws, cap=cap, step=max(sampling.draws // 2, 50))
             idata, reason, checks = _sample_until_converged(compiled, rule, options,
-                                                            sampling, model)
+                                                            sampling, model, unread)
         else:
             cores = sampling.cores or os.cpu_count() or 1
             sampler = _start_sampler(compiled, draws=sampling.draws,
                                      cores=min(cores, sampling.chains), **options)
-            idata = _collect(sampler, sampling.draws, abort=False)
+            idata = _collect_batches([sampler], sampling.draws, abort=False, unread=unread)
             reason, checks = "fixed draw count", 0
         record = {"sampler": f"nutpie {nutpie.__version__}", "draws_cap": int(cap),
                   "stop_reason": reason, "checks": int(checks), "compiled_from": source,
                   "compile_seconds": float(compile_seconds),
                   "sampling_seconds": float(time.perf_counter() - started)}
-    if not keep_latent:
-        drop = [name for name in idata.posterior.data_vars if name in LATENT_INTERNALS]
-        idata.posterior = idata.posterior.drop_vars(drop)
     add_log_likelihood(idata, model)
     kept = int(idata.posterior.sizes["draw"])
     idata.attrs.update({"recipe": recipe.name, "seed": int(sampling.seed),
@@ -159,7 +157,8 @@ def sample_study(study, graph, recipe: Recipe, sampling: Sampling,
 # ----------------------------------------------------------------- adaptive length
 
 def _sample_until_converged(compiled, rule: StopRule, options: dict, sampling: Sampling,
-                            model: pm.Model) -> tuple[az.InferenceData, str, int]:
+                            model: pm.Model, unread: Sequence[str] = ()
+                            ) -> tuple[az.InferenceData, str, int]:
     batches = _start_batches(compiled, rule.cap, sampling, options)
     judged = [name for name in DEFAULT_VARIABLES if name in model.named_vars]
     per_area = {name for name in judged if "area" in model.named_vars_to_dims.get(name, ())}
@@ -183,7 +182,7 @@ def _sample_until_converged(compiled, rule: StopRule, options: dict, sampling: S
     except BaseException:
         _discard(batches)
         raise
-    return _collect_batches(batches, kept, abort=kept < rule.cap), reason, checks
+    return _collect_batches(batches, kept, abort=kept < rule.cap, unread=unread), reason, checks
 
 
 def _start_batches(compiled, cap: int, sampling: Sampling, options: dict) -> list:
@@ -259,24 +258,52 @@ def _verdict_at(batches: list, judged: list[str], per_area: set[str], checkpoint
 
 
 def _batch_draws(batches: list, names: list[str], count: int) -> az.InferenceData:
-    return _concat_chains([_draws_so_far(batch, names, count) for batch in batches])
+    """The first ``count`` draws of every batch's chains, copied one array at a time into
+    arrays for all chains (so a large map holds the joined draws and one batch's array of
+    one variable, not every batch's copy as well)."""
+    chains = sum(batch.progress.finished.size for batch in batches)
+    groups: dict[str, dict[str, np.ndarray]] = {"posterior": {}, "sample_stats": {}}
+    offset = 0
+    for batch in batches:
+        for group, name, values in _draws_so_far(batch, names, count):
+            joined = groups[group].setdefault(
+                name, np.empty((chains,) + values.shape[1:], dtype=values.dtype))
+            joined[offset:offset + values.shape[0]] = values
+        offset += batch.progress.finished.size
+    return az.from_dict(posterior=groups["posterior"], sample_stats=groups["sample_stats"])
 
 
 def _concat_chains(parts: list[az.InferenceData]) -> az.InferenceData:
-    """One InferenceData with the chains of ``parts`` numbered 0, 1, ... in order."""
-    if len(parts) == 1:
-        return parts[0]
+    """One InferenceData, loaded into memory, with the chains of ``parts`` (which may still
+    be on disk) numbered 0, 1, ... in order. Each variable is copied part by part into one
+    array for all chains, so the peak is the result plus one part's array."""
     groups = {}
     for group in parts[0].groups():
-        datasets, offset = [], 0
-        for part in parts:
-            data = getattr(part, group)
-            if "chain" in data.dims:
-                data = data.assign_coords(chain=np.arange(offset, offset + data.sizes["chain"]))
+        datasets = [getattr(part, group) for part in parts]
+        first = datasets[0]
+        if "chain" not in first.dims:
+            groups[group] = first.load()
+            continue
+        chains = sum(data.sizes["chain"] for data in datasets)
+        variables = {}
+        for name, variable in first.data_vars.items():
+            if "chain" not in variable.dims:
+                variables[name] = variable.load()
+                continue
+            axis = variable.dims.index("chain")
+            shape = list(variable.shape)
+            shape[axis] = chains
+            joined = np.empty(shape, dtype=variable.dtype)
+            offset = 0
+            for data in datasets:
+                where = [slice(None)] * len(shape)
+                where[axis] = slice(offset, offset + data.sizes["chain"])
+                joined[tuple(where)] = data[name].values
                 offset += data.sizes["chain"]
-            datasets.append(data)
-        groups[group] = (xr.concat(datasets, dim="chain") if "chain" in datasets[0].dims
-                         else datasets[0])
+            variables[name] = (variable.dims, joined, variable.attrs)
+        coords = {key: value for key, value in first.coords.items() if key != "chain"}
+        coords["chain"] = np.arange(chains)
+        groups[group] = xr.Dataset(variables, coords=coords, attrs=first.attrs)
     joined = az.InferenceData(**groups)
     joined.attrs.update(parts[0].attrs)
     return joined
@@ -372,11 +399,13 @@ def _start_sampler(compiled, *, draws: int, tune: int, chains: int, cores: int, 
     return CountingSampler()
 
 
-# Above this estimated size the trace is written to disk (zarr) instead of kept in memory.
-# Measured on the 3,024-cell benchmark grid: peak memory 13.0 GB -> 2.8 GB; sampling 1.2x
-# slower at first, 1.3-1.4x with the combined BYM2 (113-123 s against 85 s for the same
-# draws: zarr writes warm-up draws too and share the cores), so small jobs stay in memory.
-DISK_TRACE_BYTES = 2**30
+# Above this estimated size (at the draw cap; memory grows only with the draws actually
+# taken) the trace is written to disk (zarr) instead of kept in memory. Measured on the
+# 3,024-cell benchmark grid: sampling 1.3-1.4x slower on disk (113-123 s against 85 s for
+# the same draws: zarr writes warm-up draws too and shares the cores). 2 GiB keeps maps of a
+# few thousand areas in memory with the default cap (1.2 GB at 3,024 areas) and sends
+# 30,000-area maps to disk (12 GB).
+DISK_TRACE_BYTES = 2 * 2**30
 _TRACE_PREFIX = "smootharea-trace-"
 
 
@@ -416,28 +445,24 @@ def trace_bytes(compiled, chains: int, rows: int) -> int:
     return 8 * chains * rows * (stored + 2 * compiled.n_dim)
 
 
-def _collect_batches(batches: list, kept: int, abort: bool) -> az.InferenceData:
-    """:func:`_collect` for every batch, joined along the chain axis."""
+def _collect_batches(batches: list, kept: int, abort: bool,
+                     unread: Sequence[str] = ()) -> az.InferenceData:
+    """The first ``kept`` draws per chain of every batch, joined along the chain axis and
+    loaded into memory, without the posterior variables named in ``unread``; disk traces
+    are removed afterwards."""
+    finished = []
     try:
         parts = []
         for index, batch in enumerate(batches):
-            parts.append(_collect(batch, kept, abort))
-            batches[index] = None  # released by _collect
+            idata = batch.abort() if abort else batch.wait()
+            finished.append(batch)
+            batches[index] = None
+            parts.append(_first_draws(_without_warmup_and_internals(idata, unread), kept))
         return _concat_chains(parts)
     finally:
+        for batch in finished:
+            _release(batch)
         _discard(batches)
-
-
-def _collect(sampler, kept: int, abort: bool) -> az.InferenceData:
-    """The first ``kept`` draws per chain, loaded into memory; the disk trace is removed."""
-    try:
-        idata = sampler.abort() if abort else sampler.wait()
-        idata = _first_draws(_without_warmup_and_internals(idata), kept)
-        for group in idata.groups():
-            getattr(idata, group).load()
-        return idata
-    finally:
-        _release(sampler)
 
 
 def _release(sampler) -> None:
@@ -453,9 +478,13 @@ _UNREAD_STATS = ("unconstrained_draw", "gradient", "mass_matrix_inv", "divergenc
                  "divergence_start_gradient", "divergence_end", "divergence_momentum")
 
 
-def _without_warmup_and_internals(idata: az.InferenceData) -> az.InferenceData:
+def _without_warmup_and_internals(idata: az.InferenceData,
+                                  unread: Sequence[str] = ()) -> az.InferenceData:
     groups = {group: getattr(idata, group) for group in idata.groups()
               if not group.startswith("warmup")}
+    if "posterior" in groups:
+        posterior = groups["posterior"]
+        groups["posterior"] = posterior.drop_vars([n for n in unread if n in posterior])
     if "sample_stats" in groups:
         stats = groups["sample_stats"]
         groups["sample_stats"] = stats.drop_vars([n for n in _UNREAD_STATS if n in stats])
@@ -512,34 +541,29 @@ def _zarr_group(sampler):
     return zarr.open_group(str(sampler.trace_dir), mode="r")
 
 
-def _draws_so_far(sampler, names: list[str], count: int) -> az.InferenceData:
-    """The first ``count`` post-warm-up draws of the judged variables and the stats the
-    verdict needs: from a copy of nutpie's arrow trace, or read from the disk trace."""
+def _draws_so_far(sampler, names: list[str], count: int):
+    """(group, name, draws) for the first ``count`` post-warm-up draws of each judged variable
+    and of the stats the verdict needs, one array at a time: read from the disk trace, or
+    from a copy of nutpie's arrow trace."""
     if sampler.trace_dir is not None:
         while _recorded_draws(sampler) < count:  # the last draws may still be in flight
             time.sleep(_POLL_SECONDS)
         trace = _zarr_group(sampler)
-        posterior = {name: trace["posterior"][name][:, :count] for name in names}
-        sample_stats = {name: trace["sample_stats"][name][:, :count]
-                        for name in ("diverging", "energy")}
-        return az.from_dict(posterior=posterior, sample_stats=sample_stats)
+        for name in names:
+            yield "posterior", name, trace["posterior"][name][:, :count]
+        for name in ("diverging", "energy"):
+            yield "sample_stats", name, trace["sample_stats"][name][:, :count]
+        return
     draws, stats = sampler._sampler.inspect().get_arrow_trace()
-    posterior = {}
-    sample_stats = {}
-    for name in names:
-        per_chain = []
-        for draw_batch, stat_batch in zip(draws, stats):
-            start = _tuning_rows(stat_batch)
-            values = _column(draw_batch, name)[start:start + count]
-            per_chain.append(values.reshape(count, -1) if values.ndim > 1 else values)
-        posterior[name] = np.stack(per_chain)
-    for name in ("diverging", "energy"):
-        per_chain = []
-        for stat_batch in stats:
-            start = _tuning_rows(stat_batch)
-            per_chain.append(_column(stat_batch, name)[start:start + count])
-        sample_stats[name] = np.stack(per_chain)
-    return az.from_dict(posterior=posterior, sample_stats=sample_stats)
+    starts = [_tuning_rows(stat_batch) for stat_batch in stats]
+    for group, batches, wanted in (("posterior", draws, names),
+                                   ("sample_stats", stats, ("diverging", "energy"))):
+        for name in wanted:
+            per_chain = []
+            for batch, start in zip(batches, starts):
+                values = _column(batch, name)[start:start + count]
+                per_chain.append(values.reshape(count, -1) if values.ndim > 1 else values)
+            yield group, name, np.stack(per_chain)
 
 
 def _first_draws(idata: az.InferenceData, count: int) -> az.InferenceData:
@@ -575,8 +599,11 @@ def add_log_likelihood(idata: az.InferenceData, model: pm.Model) -> None:
     expected = np.exp(np.asarray(model["log_expected"].get_value()))
     theta = idata.posterior["relative_risk"]
     values = np.empty(theta.shape)
-    for chain in range(theta.shape[0]):  # one chain at a time bounds scipy's temporaries
-        values[chain] = poisson.logpmf(counts, expected * theta.values[chain])
+    block = 200  # draws at a time: scipy's temporaries stay small at 30,000 areas
+    for chain in range(theta.shape[0]):
+        for start in range(0, theta.shape[1], block):
+            rates = expected * theta.values[chain, start:start + block]
+            values[chain, start:start + block] = poisson.logpmf(counts, rates)
     log_likelihood = xr.Dataset({"observed": (("chain", "draw", "area"), values)},
                                 coords={"chain": theta["chain"], "draw": theta["draw"],
                                         "area": theta["area"]})

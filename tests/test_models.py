@@ -18,6 +18,7 @@ import pandas as pd
 import pytensor
 import pytensor.tensor as pt
 import pytest
+import scipy.sparse as sp
 import scipy.stats as stats
 import statsmodels.api as sm
 from scipy.integrate import quad
@@ -251,11 +252,32 @@ def test_combined_bym2_density_is_the_bym2_gaussian_with_components_and_island()
     assert np.ptp(differences) < 2e-6
 
 
+def test_padded_neighbour_table_sums_like_the_adjacency_matrix():
+    # A star (one hub linked to every other area) on top of a path: the hub's degree is far
+    # above the 95th percentile, so most of its links go to the spill pairs. The sums must
+    # equal scipy's sparse product for any vector.
+    from smootharea.bym2_combined import neighbour_sum, padded_neighbour_table
+    n = 40
+    pairs = [(0, j) for j in range(1, n)] + [(j, j + 1) for j in range(1, n - 1)]
+    rows, cols = np.array(pairs).T
+    adjacency = sp.coo_matrix((np.ones(2 * len(pairs)), (np.r_[rows, cols], np.r_[cols, rows])),
+                              shape=(n, n)).tocsr()
+    table, spill_rows, spill_cols = padded_neighbour_table(adjacency)
+    assert table.shape[0] < n - 1 and spill_rows.size > 0 and set(spill_rows) == {0}
+    vector = np.append(np.random.default_rng(2).normal(size=n), 0.0)
+    out = np.empty(n)
+    neighbour_sum(table, spill_rows, spill_cols, vector, out)
+    np.testing.assert_allclose(out, adjacency @ vector[:n], rtol=1e-12)
+
+
 def test_combined_quadratic_form_and_gradient_match_dense_algebra():
     # q = b' Q M^-1 b with M = (1 - phi) Q + phi S and its gradients, against dense numpy
-    # solves (value, d/db) and a central difference (d/dphi), in the numba backend the
-    # sampler uses and in Python; phi near 0, in the middle, near 1 and at 1.
-    from smootharea.bym2_combined import CombinedLayout, quadratic_form
+    # solves (value, d/db) and a central difference (d/dphi); phi near 0, in the middle, near
+    # 1 and at 1. Solved tightly (relative residual 1e-10) the kernel must match to rounding;
+    # through the Op, in the numba backend the sampler uses and in Python, at the sampler's
+    # tolerance: the value's error is of the order of its square, the gradients' of itself.
+    from smootharea.bym2_combined import (SOLVER_TOLERANCE, CombinedLayout,
+                                          combined_quadratic_form, quadratic_form)
     study = nc_study()
     graph = nc_graph(study)
     layout = CombinedLayout.from_graph(graph)
@@ -263,25 +285,31 @@ def test_combined_quadratic_form_and_gradient_match_dense_algebra():
     s_inverse = np.diag(layout.inverse_scaling)
     b = np.random.default_rng(5).normal(size=graph.n_areas)
     b -= b.mean()
+
+    def dense(phi):
+        return b @ q @ np.linalg.solve((1 - phi) * q + phi * s_inverse, b)
+
+    def check(value, gradient_b, gradient_phi, phi, tolerance):
+        solved = np.linalg.solve((1 - phi) * q + phi * s_inverse, b)
+        assert value == pytest.approx(b @ q @ solved, rel=max(10 * tolerance**2, 1e-12))
+        exact = 2 * q @ solved
+        assert np.linalg.norm(gradient_b - exact) < 100 * tolerance * np.linalg.norm(exact)
+        # M stays positive definite a little beyond phi = 1, so a central difference works there.
+        h = min(1e-6, phi / 10)
+        numeric = (dense(phi + h) - dense(phi - h)) / (2 * h)
+        assert gradient_phi == pytest.approx(numeric, rel=max(100 * tolerance, 1e-5), abs=1e-4)
+
+    phis = (1e-4, 0.3, 0.8, 1 - 1e-9, 1.0)
+    for phi in phis:
+        value, gradient_b, gradient_phi, _ = combined_quadratic_form(b, phi, *layout.arrays(), 1e-10)
+        check(value, gradient_b, gradient_phi, phi, 1e-10)
     b_var, phi_var = pt.dvector("b"), pt.dscalar("phi")
     form = quadratic_form(b_var, phi_var, layout)
     gradients = pytensor.grad(form, [b_var, phi_var])
     for mode in ("NUMBA", "FAST_COMPILE"):
         evaluate = pytensor.function([b_var, phi_var], [form, *gradients], mode=mode)
-        for phi in (1e-4, 0.3, 0.8, 1 - 1e-9, 1.0):
-            m = (1 - phi) * q + phi * s_inverse
-            solved = np.linalg.solve(m, b)
-            value, gradient_b, gradient_phi = evaluate(b, phi)
-            assert value == pytest.approx(b @ q @ solved, rel=1e-10)
-            # The gradient carries the solver's error itself (relative residual 1e-6, times
-            # M's conditioning near phi = 0); the value's error is quadratic in it.
-            exact = 2 * q @ solved
-            assert np.linalg.norm(gradient_b - exact) < 1e-4 * np.linalg.norm(exact)
-            # M stays positive definite a little beyond phi = 1, so a central difference works there.
-            h = min(1e-6, phi / 10)
-            dense = lambda p: b @ q @ np.linalg.solve((1 - p) * q + p * s_inverse, b)  # noqa: E731
-            numeric = (dense(phi + h) - dense(phi - h)) / (2 * h)
-            assert gradient_phi == pytest.approx(numeric, rel=1e-4, abs=1e-4)
+        for phi in phis:
+            check(*evaluate(b, phi), phi, SOLVER_TOLERANCE)
 
 
 def test_bym2_parameterisation_follows_the_extra_poisson_variation():
@@ -582,18 +610,29 @@ def _fake_posterior(shift: float = 0.0, diverging: int = 0) -> az.InferenceData:
                         coords={"area": ["a", "b", "c"]}, dims={"relative_risk": ["area"]})
 
 
-def test_blockwise_diagnostics_equal_one_arviz_call():
-    # Reference: ArviZ's own az.ess / az.rhat over the whole variable at once.
-    from smootharea.diagnostics import per_element
+def test_convergence_statistics_equal_arviz():
+    # Reference: ArviZ 0.23's own az.rhat (method "rank") and az.ess ("bulk", "tail"), element by
+    # element, on autocorrelated draws with a constant element, a missing draw, tied values, an
+    # odd number of draws and a single chain; and per_element's blocks against one call.
+    from smootharea.diagnostics import convergence_statistics, per_element
 
     rng = np.random.default_rng(5)
-    risk = np.cumsum(rng.normal(size=(4, 300, 70)), axis=1) * 0.05 + rng.normal(size=(4, 300, 70))
-    posterior = az.from_dict(posterior={"relative_risk": risk}, dims={"relative_risk": ["area"]}).posterior
-    for statistic, method in ((az.ess, "bulk"), (az.ess, "tail"), (az.rhat, "rank")):
-        blocks = per_element(statistic, posterior, ["relative_risk"], block=16, method=method)
-        whole = statistic(posterior, var_names=["relative_risk"], method=method)
-        np.testing.assert_allclose(blocks["relative_risk"].values, whole["relative_risk"].values,
-                                   rtol=1e-12)
+    for shape in ((4, 300, 40), (4, 301, 6), (1, 40, 6)):
+        risk = np.cumsum(rng.normal(size=shape), axis=1) * 0.05 + rng.normal(size=shape)
+        risk[:, :, 0] = 1.5
+        risk[-1, 5, 2] = np.nan
+        risk[:, :, 3] = np.round(risk[:, :, 3])
+        posterior = az.from_dict(posterior={"relative_risk": risk},
+                                 dims={"relative_risk": ["area"]}).posterior
+        with np.errstate(divide="ignore", invalid="ignore"):
+            ours = convergence_statistics(risk)
+            blocks = per_element(posterior, ["relative_risk"], block=16)
+        for index, (statistic, method) in enumerate(((az.rhat, "rank"), (az.ess, "bulk"),
+                                                     (az.ess, "tail"))):
+            reference = statistic(posterior, var_names=["relative_risk"], method=method)
+            np.testing.assert_allclose(ours[index], reference["relative_risk"].values, rtol=1e-10)
+            np.testing.assert_allclose(blocks[index]["relative_risk"].values, ours[index],
+                                       rtol=1e-12)
 
 
 def test_verdict_passes_ideal_chains():
