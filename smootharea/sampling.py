@@ -242,33 +242,54 @@ def _advance(batches: list, target: int, cap: int) -> bool:
 
 
 def _verdict_at(batches: list, judged: list[str], per_area: set[str], checkpoint: int):
-    """The convergence verdict on the first ``checkpoint`` draws of every chain.
+    """Whether the first ``checkpoint`` draws of every chain pass the convergence verdict.
 
     The verdict is a conjunction, so the scalar parameters (and the sampler statistics)
-    are judged first, and the per-area variables are read and judged only if those pass:
-    on large maps the per-area R-hat and ESS cost seconds per check, while the slowest
-    mixing parameters are usually the scalar ones.
+    are judged first, and the per-area variables are read only if those pass, then judged
+    :data:`AREA_BLOCK` areas at a time up to the first block that fails. Only ``converged``
+    and ``divergences`` of the result are used: the verdict that is reported is computed
+    afresh on the kept draws. Why: on the 3,024-cell grid the checks that failed cost 4-6 s
+    each (all areas' R-hat and ESS), as much as the sampling between them.
     """
     scalars = [name for name in judged if name not in per_area]
-    if scalars and per_area:
+    verdict = None
+    if scalars:
         verdict = assess_convergence(_batch_draws(batches, scalars, checkpoint), var_names=scalars)
-        if not verdict.converged:
+        if not verdict.converged or not per_area:
             return verdict
-    return assess_convergence(_batch_draws(batches, judged, checkpoint), var_names=judged)
+    draws = _batch_draws(batches, [name for name in judged if name in per_area], checkpoint)
+    for name in draws.posterior.data_vars:
+        variable = draws.posterior[name]
+        dim = variable.dims[2]
+        for start in range(0, variable.sizes[dim], AREA_BLOCK):
+            block = draws.posterior[[name]].isel({dim: slice(start, start + AREA_BLOCK)})
+            verdict = assess_convergence(az.InferenceData(posterior=block,
+                                                          sample_stats=draws.sample_stats),
+                                         var_names=[name])
+            if not verdict.converged:
+                return verdict
+    return verdict if verdict is not None else assess_convergence(draws, var_names=judged)
+
+
+# Areas judged together in a convergence check (see _verdict_at).
+AREA_BLOCK = 256
 
 
 def _batch_draws(batches: list, names: list[str], count: int) -> az.InferenceData:
-    """The first ``count`` draws of every batch's chains, copied one array at a time into
-    arrays for all chains (so a large map holds the joined draws and one batch's array of
+    """The first ``count`` draws of every batch's chains, copied one chain at a time into
+    arrays for all chains (so a large map holds the joined draws and one chain's array of
     one variable, not every batch's copy as well)."""
     chains = sum(batch.progress.finished.size for batch in batches)
     groups: dict[str, dict[str, np.ndarray]] = {"posterior": {}, "sample_stats": {}}
     offset = 0
     for batch in batches:
-        for group, name, values in _draws_so_far(batch, names, count):
-            joined = groups[group].setdefault(
-                name, np.empty((chains,) + values.shape[1:], dtype=values.dtype))
-            joined[offset:offset + values.shape[0]] = values
+        for group, name, chain, rows in _draws_so_far(batch, names, count):
+            if name not in groups[group]:
+                groups[group][name] = np.empty((chains, count) + rows.shape[1:], dtype=rows.dtype)
+            joined = groups[group][name]
+            for start in range(0, count, _ROWS_PER_READ):  # bounded reads from the disk trace
+                stop = min(start + _ROWS_PER_READ, count)
+                joined[offset + chain, start:stop] = rows[start:stop]
         offset += batch.progress.finished.size
     return az.from_dict(posterior=groups["posterior"], sample_stats=groups["sample_stats"])
 
@@ -276,7 +297,7 @@ def _batch_draws(batches: list, names: list[str], count: int) -> az.InferenceDat
 def _concat_chains(parts: list[az.InferenceData]) -> az.InferenceData:
     """One InferenceData, loaded into memory, with the chains of ``parts`` (which may still
     be on disk) numbered 0, 1, ... in order. Each variable is copied part by part into one
-    array for all chains, so the peak is the result plus one part's array."""
+    array for all chains, one chain at a time, so the peak is the result plus one chain."""
     groups = {}
     for group in parts[0].groups():
         datasets = [getattr(part, group) for part in parts]
@@ -296,9 +317,10 @@ def _concat_chains(parts: list[az.InferenceData]) -> az.InferenceData:
             joined = np.empty(shape, dtype=variable.dtype)
             offset = 0
             for data in datasets:
-                where = [slice(None)] * len(shape)
-                where[axis] = slice(offset, offset + data.sizes["chain"])
-                joined[tuple(where)] = data[name].values
+                for chain in range(data.sizes["chain"]):
+                    where = [slice(None)] * len(shape)
+                    where[axis] = offset + chain
+                    joined[tuple(where)] = data[name].isel(chain=chain).values
                 offset += data.sizes["chain"]
             variables[name] = (variable.dims, joined, variable.attrs)
         coords = {key: value for key, value in first.coords.items() if key != "chain"}
@@ -542,28 +564,41 @@ def _zarr_group(sampler):
 
 
 def _draws_so_far(sampler, names: list[str], count: int):
-    """(group, name, draws) for the first ``count`` post-warm-up draws of each judged variable
-    and of the stats the verdict needs, one array at a time: read from the disk trace, or
-    from a copy of nutpie's arrow trace."""
+    """(group, name, chain, draws) for the first ``count`` post-warm-up draws of each judged
+    variable and of the stats the verdict needs, one chain at a time: read from the disk
+    trace, or from a copy of nutpie's arrow trace."""
     if sampler.trace_dir is not None:
         while _recorded_draws(sampler) < count:  # the last draws may still be in flight
             time.sleep(_POLL_SECONDS)
         trace = _zarr_group(sampler)
-        for name in names:
-            yield "posterior", name, trace["posterior"][name][:, :count]
-        for name in ("diverging", "energy"):
-            yield "sample_stats", name, trace["sample_stats"][name][:, :count]
+        for group, wanted in (("posterior", names), ("sample_stats", ("diverging", "energy"))):
+            for name in wanted:
+                stored = trace[group][name]
+                for chain in range(stored.shape[0]):
+                    yield group, name, chain, _ChainRows(stored, chain, count)
         return
     draws, stats = sampler._sampler.inspect().get_arrow_trace()
     starts = [_tuning_rows(stat_batch) for stat_batch in stats]
     for group, batches, wanted in (("posterior", draws, names),
                                    ("sample_stats", stats, ("diverging", "energy"))):
         for name in wanted:
-            per_chain = []
-            for batch, start in zip(batches, starts):
+            for chain, (batch, start) in enumerate(zip(batches, starts)):
                 values = _column(batch, name)[start:start + count]
-                per_chain.append(values.reshape(count, -1) if values.ndim > 1 else values)
-            yield group, name, np.stack(per_chain)
+                yield group, name, chain, (values.reshape(count, -1) if values.ndim > 1 else values)
+
+
+_ROWS_PER_READ = 128
+
+
+class _ChainRows:
+    """Rows (draws) of one chain of a zarr array, read only when sliced."""
+
+    def __init__(self, stored, chain: int, count: int):
+        self.stored, self.chain = stored, chain
+        self.shape, self.dtype = (count,) + tuple(stored.shape[2:]), stored.dtype
+
+    def __getitem__(self, rows: slice) -> np.ndarray:
+        return self.stored[self.chain, rows]
 
 
 def _first_draws(idata: az.InferenceData, count: int) -> az.InferenceData:
@@ -598,7 +633,9 @@ def add_log_likelihood(idata: az.InferenceData, model: pm.Model) -> None:
     counts = np.asarray(model["observed_count"].get_value())
     expected = np.exp(np.asarray(model["log_expected"].get_value()))
     theta = idata.posterior["relative_risk"]
-    values = np.empty(theta.shape)
+    # float32: at 30,000 areas x 6,000 draws this array alone is 0.7 GB (1.4 GB in float64);
+    # LOO and WAIC need far fewer digits than that.
+    values = np.empty(theta.shape, dtype=np.float32)
     block = 200  # draws at a time: scipy's temporaries stay small at 30,000 areas
     for chain in range(theta.shape[0]):
         for start in range(0, theta.shape[1], block):
