@@ -326,9 +326,9 @@ def estimate_and_publish(job: Job, out_root: Path, outcome: RunOutcome,
                      "hyperparameters on a grid; no sampler", job.model.recipe)
             result = fit_model(job, prepared, progress, quick=True)
         else:
-            log.info("fitting recipe %s: %d chains x %d draws (%d warmup), seed %d",
-                     job.model.recipe, job.sampling.chains, job.sampling.draws,
-                     job.sampling.warmup, job.sampling.seed)
+            log.info("fitting recipe %s: %d chains, %d warm-up steps, then at least %d draws each "
+                     "(more until converged), seed %d", job.model.recipe, job.sampling.chains,
+                     job.sampling.warmup, job.sampling.draws, job.sampling.seed)
             result = fit_model(job, prepared, progress)
     except Exception as error:  # noqa: BLE001
         from .recipes import RecipeError
