@@ -264,7 +264,12 @@ def run_cli(*args: str) -> int:
 
 
 def start_cli_run(job_file: Path) -> subprocess.Popen:
-    env = {**os.environ, "PYTHONPATH": f"{ROOT}{os.pathsep}{os.environ.get('PYTHONPATH', '')}"}
+    # The run is killed mid-sampling and cannot remove its disk trace: keep that in the test's
+    # own temporary folder, not the machine's.
+    scratch = job_file.parent / "tmp"
+    scratch.mkdir(exist_ok=True)
+    env = {**os.environ, "PYTHONPATH": f"{ROOT}{os.pathsep}{os.environ.get('PYTHONPATH', '')}",
+           "TMPDIR": str(scratch)}
     return subprocess.Popen([sys.executable, "-m", "smootharea.cli", "run", str(job_file), "--quiet"],
                             cwd=ROOT, env=env, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
 
