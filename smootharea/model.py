@@ -433,12 +433,9 @@ def mixing_kld_logit(y, spectrum: MixingSpectrum) -> np.ndarray:
     return _kld_and_slope(y, spectrum)[0]
 
 
-def _kld_logit_slope(y, spectrum: MixingSpectrum) -> np.ndarray:
-    """dKLD/dy = 0.5 phi^2 (1 - phi) [sum_k w_k (g_k - 1)^2 / (1 + phi (g_k - 1)) ] + 0.5 phi^2 n0."""
-    return _kld_and_slope(y, spectrum)[1]
-
-
 def _kld_and_slope(y, spectrum: MixingSpectrum) -> tuple[np.ndarray, np.ndarray]:
+    """KLD(y) and dKLD/dy = 0.5 phi^2 (1 - phi) [sum_k w_k (g_k - 1)^2 / (1 + phi (g_k - 1))]
+    + 0.5 phi^2 n0, one value each per element of y."""
     y = np.asarray(y, dtype=float)
     kld, slope = _kld_and_slope_kernel(y.ravel(), spectrum.gamma, spectrum.weight,
                                        float(spectrum.null_count))
