@@ -28,7 +28,7 @@ from matplotlib.figure import Figure
 from matplotlib.patches import Patch
 
 from .job import threshold_label
-from .summarise import SIGNAL_LOWER, SIGNAL_UPPER, exceedance_probability, relative_risk_draws
+from .summarise import SIGNAL_LOWER, SIGNAL_UPPER, exceedance_from_posterior
 
 # Diverging palettes for ratios: low end first, high (raised risk) end last.
 DIVERGING_PALETTES = {
@@ -104,10 +104,7 @@ def exceedance_column(run: RunFiles, threshold: float) -> str:
     """Name of the ``p_above_<t>`` column, computing it from ``posterior.nc`` if the job lacked it."""
     column = f"p_above_{threshold_label(threshold)}"
     if column not in run.areas:
-        draws = relative_risk_draws(run.idata)
-        order = [str(a) for a in run.idata.posterior["area"].values]
-        probability = pd.Series(exceedance_probability(draws, threshold), index=order)
-        run.areas[column] = probability.loc[run.areas["area_id"]].to_numpy()
+        run.areas[column] = exceedance_from_posterior(run.idata, threshold, run.areas["area_id"])
     return column
 
 

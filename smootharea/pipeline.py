@@ -22,7 +22,7 @@ from .load import load_study
 from .provenance import package_versions, utc_now
 from .study import StudyData
 from .summarise import (area_table, fixed_effects, hyperparameters, model_comparison,
-                        ranking_table, relative_risk_draws)
+                        ranking_table, relative_risk_values)
 
 if TYPE_CHECKING:  # PyMC is heavy; `check` never needs it.
     from .recipes import Recipe
@@ -138,7 +138,7 @@ def summarise_fit(prepared: PreparedStudy, recipe: "Recipe", idata: az.Inference
                   approximate: str | None = None) -> FitResult:
     """Turn a posterior into the per-area table, the ranking and the model record."""
     job, study = prepared.job, prepared.study
-    draws = relative_risk_draws(idata)
+    draws = relative_risk_values(idata)
     thresholds = job.report.thresholds
     table = area_table(study.area_ids, study.observed, study.expected, draws,
                        thresholds, job.report.interval)

@@ -8,7 +8,7 @@ import arviz as az
 import pandas as pd
 
 from .job import threshold_label
-from .summarise import exceedance_probability, ranking_table, relative_risk_draws
+from .summarise import exceedance_from_posterior, ranking_table
 
 
 def ranking_from_run(run_dir: str | Path, threshold: float | None = None) -> pd.DataFrame:
@@ -22,8 +22,5 @@ def ranking_from_run(run_dir: str | Path, threshold: float | None = None) -> pd.
         probability = table[column].to_numpy()
     else:
         idata = az.from_netcdf(run_dir / "posterior.nc", engine="h5netcdf")
-        draws = relative_risk_draws(idata)
-        order = [str(a) for a in idata.posterior["area"].values]
-        probability = pd.Series(exceedance_probability(draws, threshold), index=order)
-        probability = probability.loc[table["area_id"]].to_numpy()
+        probability = exceedance_from_posterior(idata, threshold, table["area_id"])
     return ranking_table(table, probability, threshold)

@@ -23,6 +23,7 @@ every checkpoint until the others reach it (:func:`_start_batches`).
 """
 from __future__ import annotations
 
+import json
 import os
 import shutil
 import sys
@@ -511,8 +512,15 @@ def _without_warmup_and_internals(idata: az.InferenceData,
         stats = groups["sample_stats"]
         groups["sample_stats"] = stats.drop_vars([n for n in _UNREAD_STATS if n in stats])
     trimmed = az.InferenceData(**groups)
-    trimmed.attrs.update(idata.attrs)
+    trimmed.attrs.update(_storable_attrs(idata.attrs))
     return trimmed
+
+
+def _storable_attrs(attrs: dict[str, Any]) -> dict[str, Any]:
+    """Attributes netCDF can hold: nutpie's disk trace adds its settings as a dict, which
+    ``posterior.nc`` could not store; dictionaries become JSON text."""
+    return {key: json.dumps(value, default=str) if isinstance(value, dict) else value
+            for key, value in attrs.items()}
 
 
 def _wait_for_draws(sampler, target: int, cap: int) -> bool:

@@ -564,6 +564,11 @@ def test_trace_on_disk_gives_the_same_draws_as_in_memory(monkeypatch, tmp_path):
                                   in_memory.sample_stats["diverging"].values)
     assert "gradient" not in on_disk.sample_stats
     assert list(tmp_path.iterdir()) == []  # the disk trace is removed afterwards
+    # posterior.nc must be writable: the disk trace's settings arrive as a dict attribute
+    stored = tmp_path / "posterior.nc"
+    on_disk.to_netcdf(str(stored), engine="h5netcdf")
+    assert az.from_netcdf(stored, engine="h5netcdf").attrs["stop_reason"] == \
+        in_memory.attrs["stop_reason"]
 
 
 def test_trace_folders_of_ended_processes_are_removed(tmp_path):

@@ -84,3 +84,71 @@ def test_a_single_small_count_gets_a_complementary_partner():
     masked = mask_small_counts(table, 5)
     assert masked["suppressed"].tolist() == [False, True, False, True]
     assert masked["observed"].isna().tolist() == [False, True, False, True]
+
+
+# --- large maps: the same numbers, computed a block at a time -----------------------------
+
+from fixtures_runs import nc_run_dir  # noqa: E402,F401  (shared session fixture)
+
+
+def _nc_posterior(run_dir):
+    import arviz as az
+    return az.from_netcdf(run_dir / "posterior.nc", engine="h5netcdf")
+
+
+def test_blocked_area_table_equals_whole_array_numpy(nc_run_dir, monkeypatch):
+    # Reference: numpy's mean, median, quantile and std over the whole stacked draws, and
+    # scipy.stats.rankdata per draw, on a real North Carolina posterior (2 chains x 300 draws).
+    import smootharea.summarise as summarise
+    values = summarise.relative_risk_values(_nc_posterior(nc_run_dir))
+    draws = values.reshape(-1, values.shape[-1])
+    n = draws.shape[1]
+    monkeypatch.setattr(summarise, "AREA_BLOCK", 7)  # 100 counties: 15 blocks, the last short
+    monkeypatch.setattr(summarise, "DRAW_BLOCK", 33)
+    table = summarise.area_table([str(i) for i in range(n)], np.arange(n), np.ones(n), values,
+                                 (1.0, 1.2), 0.9)
+    ranks = np.vstack([stats.rankdata(-row, method="ordinal") for row in draws])
+    assert np.allclose(table["rr_mean"], draws.mean(axis=0), rtol=1e-12)
+    assert np.allclose(table["rr_median"], np.median(draws, axis=0), rtol=1e-12)
+    assert np.allclose(table["rr_lower"], np.quantile(draws, 0.05, axis=0), rtol=1e-12)
+    assert np.allclose(table["rr_upper"], np.quantile(draws, 0.95, axis=0), rtol=1e-12)
+    assert np.allclose(table["rr_sd"], draws.std(axis=0, ddof=1), rtol=1e-12)
+    assert np.array_equal(table["rank_median"], np.median(ranks, axis=0))
+    assert np.array_equal(table["rank_lower"], np.floor(np.quantile(ranks, 0.05, axis=0)))
+    assert np.array_equal(table["rank_upper"], np.ceil(np.quantile(ranks, 0.95, axis=0)))
+    assert np.array_equal(table["p_above_1.2"], (draws > 1.2).mean(axis=0))
+
+
+def test_rank_matrix_uses_a_small_integer_type():
+    rng = np.random.default_rng(1)
+    from smootharea.summarise import rank_matrix
+    values = rng.lognormal(size=(2, 5, 300))
+    ranks = rank_matrix(values)
+    assert ranks.dtype == np.uint16 and ranks.shape == (10, 300)
+    assert np.array_equal(ranks, rank_draws(values.reshape(10, 300)))
+
+
+def test_blocked_loo_and_waic_equal_arviz_on_the_whole_posterior(nc_run_dir, monkeypatch):
+    # Reference: ArviZ 0.23's az.loo and az.waic on the whole North Carolina posterior
+    # (r_eff from the whole posterior, as az.loo computes it by default).
+    import warnings
+
+    import arviz as az
+
+    import smootharea.summarise as summarise
+    idata = _nc_posterior(nc_run_dir)
+    monkeypatch.setattr(summarise, "AREA_BLOCK", 30)  # 100 counties: 4 blocks
+    result = summarise.model_comparison(idata)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        loo, waic = az.loo(idata, pointwise=True), az.waic(idata, pointwise=True)
+    k = np.asarray(loo.pareto_k)
+    assert result["loo"]["elpd"] == pytest.approx(float(loo.elpd_loo), rel=1e-9)
+    assert result["loo"]["se"] == pytest.approx(float(loo.se), rel=1e-9)
+    assert result["loo"]["p_loo"] == pytest.approx(float(loo.p_loo), rel=1e-9)
+    assert result["loo"]["pareto_k_good"] == int(np.sum(k <= 0.7))
+    assert result["loo"]["pareto_k_very_bad"] == int(np.sum(k > 1.0))
+    assert result["waic"]["elpd"] == pytest.approx(float(waic.elpd_waic), rel=1e-9)
+    assert result["waic"]["se"] == pytest.approx(float(waic.se), rel=1e-9)
+    # ArviZ adds up the float32 pointwise variances in float32; the blocks add in float64.
+    assert result["waic"]["p_waic"] == pytest.approx(float(waic.p_waic), rel=1e-6)
