@@ -1,7 +1,8 @@
 """Benchmark smootharea's sampler, the documentation-style PyMC baseline and ``--quick``.
 
     python benchmarks/run.py [--sizes small|full] [--out benchmarks/results/table.csv]
-                             [--skip-baseline] [--cases NAME ...]
+                             [--skip-baseline] [--skip-cached-rerun] [--whole-run]
+                             [--cases NAME ...]
 
 Each method on each map runs in its own child process, so peak memory is per case.
 See benchmarks/README.md for the columns. Times depend on the machine and its load.
@@ -178,11 +179,36 @@ def worker_baseline(job_path: Path, summary: Path) -> dict:
     return result
 
 
+def worker_whole_run(job_path: Path, summary: Path) -> dict:
+    """A whole ``smootharea run`` (inputs to report, maps and history) into a scratch folder
+    that is removed afterwards: the wall time and peak memory a nightly job sees."""
+    from smootharea.job import load_job
+    from smootharea.runner import run_job
+
+    job = load_job(job_path)
+    out_dir = summary.parent / "whole_run"
+    shutil.rmtree(out_dir, ignore_errors=True)
+    clock = time.perf_counter()
+    try:
+        outcome = run_job(job, out_dir, progress=False, echo=False)
+        total = time.perf_counter() - clock
+        model = outcome.result.model_info if outcome.result is not None else {}
+    finally:
+        shutil.rmtree(out_dir, ignore_errors=True)
+    sampling = model.get("sampling", {})
+    return {"areas": None if outcome.result is None else outcome.result.prepared.study.n_areas,
+            "total_s": total,
+            "note": (f"status {outcome.status}; {sampling.get('draws', '?')} draws per chain; "
+                     f"compiled model from: {sampling.get('compiled_from', '?')}; "
+                     "reading, checks, sampling, summaries, LOO/WAIC, posterior.nc, maps, report")}
+
+
 WORKERS = {"nuts": worker_nuts, "nuts_cached": worker_nuts, "quick": worker_quick,
-           "baseline": worker_baseline}
+           "baseline": worker_baseline, "whole_run": worker_whole_run}
 METHOD_NAMES = {"nuts": "smootharea NUTS", "nuts_cached": "smootharea NUTS, second run",
                 "quick": "smootharea --quick",
-                "baseline": "PyMC documentation baseline"}
+                "baseline": "PyMC documentation baseline",
+                "whole_run": "smootharea run (whole job)"}
 
 
 # ----------------------------------------------------------------- parent
@@ -226,7 +252,8 @@ def compare_quick(scratch: Path) -> dict:
 
 
 def benchmark(cases: list[str], skip_baseline: bool, data_dir: Path, scratch_root: Path,
-              out: Path, timeout: float | None = None, rerun: bool = True) -> list[dict]:
+              out: Path, timeout: float | None = None, rerun: bool = True,
+              whole_run: bool = False) -> list[dict]:
     """Run every case; the CSV is rewritten after each case, so a long run leaves partial results."""
     rows = []
     for case in cases:
@@ -237,7 +264,8 @@ def benchmark(cases: list[str], skip_baseline: bool, data_dir: Path, scratch_roo
             stale.unlink()
         shutil.rmtree(scratch / "compiled", ignore_errors=True)
         cache = detect_cache()
-        methods = (["nuts"] + (["nuts_cached"] if cache and rerun else []) + ["quick"]
+        methods = (["nuts"] + (["nuts_cached"] if cache and rerun else [])
+                   + (["whole_run"] if whole_run else []) + ["quick"]
                    + ([] if skip_baseline else ["baseline"]))
         results = {}
         for method in methods:
@@ -308,6 +336,9 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--skip-baseline", action="store_true")
     parser.add_argument("--skip-cached-rerun", action="store_true",
                         help="do not repeat the NUTS run to time the compiled-model cache")
+    parser.add_argument("--whole-run", action="store_true",
+                        help="also time a whole `smootharea run` of each map (summaries, "
+                             "outputs, maps, report) with its peak memory")
     parser.add_argument("--timeout", type=float, default=None,
                         help="stop any one method on one map after this many seconds")
     parser.add_argument("--data", type=Path, default=HERE / "results" / "data",
@@ -328,7 +359,7 @@ def main(argv: list[str] | None = None) -> int:
     started = time.perf_counter()
     rows = benchmark(cases, arguments.skip_baseline, arguments.data,
                      arguments.out.parent / "scratch", arguments.out, arguments.timeout,
-                     not arguments.skip_cached_rerun)
+                     not arguments.skip_cached_rerun, arguments.whole_run)
     print_table(rows)
     print(f"\nwritten {arguments.out}; {time.perf_counter() - started:.0f} s in all; "
           f"{os.cpu_count()} CPUs; load average {os.getloadavg()[0]:.2f} at the end")
