@@ -43,6 +43,29 @@ class Verdict:
         return {key: (None if isinstance(value, float) and not math.isfinite(value) else value)
                 for key, value in asdict(self).items()}
 
+    @classmethod
+    def from_dict(cls, record: dict[str, Any]) -> "Verdict":
+        """The inverse of :meth:`to_dict`."""
+        return cls(**{key: (math.nan if value is None and key != "reasons" else value)
+                      for key, value in record.items()})
+
+
+def combine_verdicts(verdicts: Sequence[Verdict]) -> Verdict:
+    """One verdict from verdicts on disjoint parts (variables, blocks of areas) of the same
+    draws: every element's R-hat and ESS depend on that element alone, so this equals the
+    verdict on all parts at once."""
+    def extreme(values, reducer) -> float:
+        finite = [v for v in values if math.isfinite(v)]
+        return reducer(finite) if finite else math.nan
+
+    return Verdict(converged=all(v.converged for v in verdicts),
+                   reasons=[reason for v in verdicts for reason in v.reasons],
+                   max_rhat=extreme([v.max_rhat for v in verdicts], max),
+                   min_ess_bulk=extreme([v.min_ess_bulk for v in verdicts], min),
+                   min_ess_tail=extreme([v.min_ess_tail for v in verdicts], min),
+                   divergences=max(v.divergences for v in verdicts),
+                   min_bfmi=extreme([v.min_bfmi for v in verdicts], min))
+
 
 def assess_convergence(idata: az.InferenceData, var_names: Sequence[str] | None = None,
                        rhat_max: float = 1.01, ess_min: float = 400,

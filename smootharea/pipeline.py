@@ -14,7 +14,7 @@ import geopandas as gpd
 import numpy as np
 import pandas as pd
 
-from .diagnostics import Verdict, assess_convergence
+from .diagnostics import Verdict
 from .frequentist import FrequentistReferences, fit_references
 from .graph import NeighbourGraph, build_graph
 from .job import Job, threshold_label
@@ -123,14 +123,13 @@ def fit(job: Job, progress: bool | None = None, prepared: PreparedStudy | None =
                if k in attrs}}
         return result
 
-    from .sampling import sample_study
+    from .sampling import run_verdict, sample_study
     idata = sample_study(prepared.study, prepared.graph, recipe, job.sampling, progress=progress)
     timings["model_seconds"] = time.perf_counter() - started
     timings.update({f"sampler_{key}": float(idata.attrs[key])
                     for key in ("compile_seconds", "sampling_seconds") if key in idata.attrs})
 
-    verdict = assess_convergence(idata)
-    return summarise_fit(prepared, recipe, idata, verdict, timings)
+    return summarise_fit(prepared, recipe, idata, run_verdict(idata), timings)
 
 
 def summarise_fit(prepared: PreparedStudy, recipe: "Recipe", idata: az.InferenceData,

@@ -654,3 +654,24 @@ def test_verdict_names_the_variable_and_threshold_missed():
     assert "R-hat above 1.01" in text and "relative_risk[a]" in text
     assert "3 divergent" in text and verdict.divergences == 3
     assert verdict.to_dict()["divergences"] == 3
+
+
+def test_the_stopping_check_verdict_is_the_verdict_on_the_kept_draws(monkeypatch):
+    # The check that stops sampling judged exactly the kept draws, scalars first and then
+    # blocks of areas; its combined verdict is reused as the run's verdict, so it must equal
+    # the verdict computed afresh on the kept draws (diagnostics.assess_convergence).
+    import smootharea.sampling as sampling_module
+    from smootharea.sampling import VERDICT_ATTR, run_verdict
+
+    monkeypatch.setattr(sampling_module, "AREA_BLOCK", 7)  # 20 areas: blocks of 7, 7 and 6
+    model, recipe = small_conjugate_model()
+    sampling = Sampling(chains=2, draws=100, warmup=100, seed=1, cores=2)
+    idata = sample_posterior(model, sampling, recipe, progress=False)
+    assert VERDICT_ATTR in idata.attrs
+    stored, fresh = run_verdict(idata), assess_convergence(idata)
+    assert stored.converged and fresh.converged and stored.reasons == fresh.reasons == []
+    for field in ("max_rhat", "min_ess_bulk", "min_ess_tail", "min_bfmi"):
+        assert getattr(stored, field) == pytest.approx(getattr(fresh, field), rel=1e-12), field
+    assert stored.divergences == fresh.divergences
+    del idata.attrs[VERDICT_ATTR]  # without the record, the verdict is computed afresh
+    assert run_verdict(idata).min_ess_bulk == pytest.approx(fresh.min_ess_bulk, rel=1e-12)
