@@ -147,6 +147,42 @@ def test_bym2_quick_agrees_with_nuts_on_north_carolina():
                                                                abs=0.03)
 
 
+def test_large_map_path_keeps_only_modes_and_gives_the_same_posterior(monkeypatch):
+    # Above quick.CACHE_LIMIT the grid keeps each point's mode, not its sparse factor (memory
+    # at 30,000 areas), and the draws refit each point from that mode. Reference: the same
+    # approximation with every fit kept (the small-map path), on North Carolina.
+    import smootharea.quick as quick
+    from smootharea.pipeline import prepare
+    job = load_job(NC_JOB)
+    prepared = prepare(job)
+    recipe = load_recipe("bym2")
+    sampling = replace(job.sampling, chains=2, draws=500)
+    kept = fit_quick(prepared, recipe, sampling)
+    explored = []
+    original = quick.explore_grid
+    monkeypatch.setattr(quick, "CACHE_LIMIT", 0)
+    monkeypatch.setattr(quick, "explore_grid",
+                        lambda laplace: explored.append(original(laplace)) or explored[-1])
+    factors, most_alive = [], [0]
+    fit_method = quick.LaplaceApproximation.fit
+
+    def counting_fit(self, *args, **kwargs):
+        import weakref
+        fit = fit_method(self, *args, **kwargs)
+        factors.append(weakref.ref(fit.factor))  # freed by reference counting once dropped
+        most_alive[0] = max(most_alive[0], sum(ref() is not None for ref in factors))
+        return fit
+
+    monkeypatch.setattr(quick.LaplaceApproximation, "fit", counting_fit)
+    refitted = fit_quick(prepared, recipe, sampling)
+    assert all(isinstance(fit, np.ndarray) for fit in explored[0].fits)  # modes only
+    # only the fit being extended and the new one are alive, never every grid point's factor
+    assert most_alive[0] <= 3 < kept.attrs["grid_points"]
+    assert kept.attrs["grid_points"] == refitted.attrs["grid_points"]
+    np.testing.assert_allclose(stacked(refitted, "relative_risk").mean(axis=0),
+                               stacked(kept, "relative_risk").mean(axis=0), rtol=1e-6)
+
+
 def test_quick_run_is_labelled_everywhere_and_leaves_latest(tmp_path, capsys):
     from smootharea.cli import main
     out = tmp_path / "out"
