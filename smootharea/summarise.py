@@ -114,12 +114,13 @@ def area_table(area_ids, observed: np.ndarray, expected: np.ndarray, draws: np.n
     smr, smr_lower, smr_upper = smr_with_limits(observed, expected, interval)
     n_areas = draws.shape[-1]
     columns = {name: np.empty(n_areas) for name in
-             ("rr_mean", "rr_median", "rr_lower", "rr_upper", "rr_sd",
-              "rank_median", "rank_lower", "rank_upper")}
+               ("rr_mean", "rr_median", "rr_lower", "rr_upper", "rr_sd",
+                "rank_median", "rank_lower", "rank_upper")}
     for areas, block in area_blocks(draws):
         columns["rr_mean"][areas] = block.mean(axis=0)
         columns["rr_median"][areas] = np.median(block, axis=0)
-        columns["rr_lower"][areas], columns["rr_upper"][areas] = np.quantile(block, [low, high], axis=0)
+        columns["rr_lower"][areas], columns["rr_upper"][areas] = np.quantile(
+            block, [low, high], axis=0)
         columns["rr_sd"][areas] = block.std(axis=0, ddof=1)
     ranks = rank_matrix(draws)
     for areas, block in area_blocks(ranks[None]):
