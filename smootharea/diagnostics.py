@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import asdict, dataclass, field
-from typing import Any, Sequence
+from typing import Any, Iterator, Sequence
 
 import arviz as az
 import numba
@@ -63,7 +63,7 @@ def combine_verdicts(verdicts: Sequence[Verdict]) -> Verdict:
                    max_rhat=extreme([v.max_rhat for v in verdicts], max),
                    min_ess_bulk=extreme([v.min_ess_bulk for v in verdicts], min),
                    min_ess_tail=extreme([v.min_ess_tail for v in verdicts], min),
-                   divergences=max(v.divergences for v in verdicts),
+                   divergences=max((v.divergences for v in verdicts), default=0),
                    min_bfmi=extreme([v.min_bfmi for v in verdicts], min))
 
 
@@ -112,16 +112,21 @@ def per_element(posterior: xr.Dataset, names: Sequence[str], block: int = 512
     for name in names:
         draws = posterior[name].transpose("chain", "draw", ...)
         extra = draws.dims[2:]
-        values = np.asarray(draws.values, dtype=float)
-        flat = values.reshape(values.shape[0], values.shape[1], -1)
-        parts = [convergence_statistics(flat[:, :, start:start + block])
-                 for start in range(0, flat.shape[2], block)]
+        parts = [convergence_statistics(part) for part in _element_blocks(draws, block)]
         coords = {dim: draws[dim] for dim in extra if dim in draws.coords}
         for index, result in enumerate(results):
             stat = np.concatenate([part[index] for part in parts])
-            result[name] = xr.DataArray(stat.reshape(values.shape[2:]), dims=extra, coords=coords)
+            result[name] = xr.DataArray(stat.reshape(draws.shape[2:]), dims=extra, coords=coords)
     rhat, ess_bulk, ess_tail = (xr.Dataset(result) for result in results)
     return rhat, ess_bulk, ess_tail
+
+
+def _element_blocks(draws: xr.DataArray, block: int) -> Iterator[np.ndarray]:
+    """Draws of a variable as chain x draw x element arrays of ``block`` elements each."""
+    values = np.asarray(draws.transpose("chain", "draw", ...).values, dtype=float)
+    flat = values.reshape(values.shape[0], values.shape[1], -1)
+    for start in range(0, flat.shape[2], block):
+        yield flat[:, :, start:start + block]
 
 
 # --------------------------------------------------- R-hat and ESS, all elements at once
@@ -171,10 +176,8 @@ def relative_efficiency(posterior: xr.Dataset, block: int = 512) -> float:
         return 1.0
     total, count = 0.0, 0
     for name in posterior.data_vars:
-        values = np.asarray(posterior[name].transpose("chain", "draw", ...).values, dtype=float)
-        flat = values.reshape(n_chains, n_draws, -1)
-        for start in range(0, flat.shape[2], block):
-            ess = mean_ess(flat[:, :, start:start + block])
+        for part in _element_blocks(posterior[name], block):
+            ess = mean_ess(part)
             total, count = total + ess.sum(), count + ess.size
     return total / count / (n_chains * n_draws)
 
