@@ -659,7 +659,8 @@ def test_verdict_names_the_variable_and_threshold_missed():
 def test_the_stopping_check_verdict_is_the_verdict_on_the_kept_draws(monkeypatch):
     # The check that stops sampling judged exactly the kept draws, scalars first and then
     # blocks of areas; its combined verdict is reused as the run's verdict, so it must equal
-    # the verdict computed afresh on the kept draws (diagnostics.assess_convergence).
+    # the verdict computed afresh on the kept draws (diagnostics.assess_convergence, whose
+    # R-hat and ESS are held equal to ArviZ 0.23 in test_convergence_statistics_equal_arviz).
     import smootharea.sampling as sampling_module
     from smootharea.sampling import VERDICT_ATTR, run_verdict
 
