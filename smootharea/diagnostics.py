@@ -10,6 +10,7 @@ R-hat and ESS are ArviZ's definitions (ArviZ 0.23: az.rhat method "rank", az.ess
 from __future__ import annotations
 
 import math
+from functools import lru_cache
 from dataclasses import asdict, dataclass, field
 from typing import Any, Iterator, Sequence
 
@@ -17,7 +18,6 @@ import arviz as az
 import numba
 import numpy as np
 import xarray as xr
-from scipy.fft import next_fast_len
 from scipy.special import ndtri
 
 # Variables judged by default, where the posterior has them.
@@ -145,18 +145,18 @@ def convergence_statistics(draws: np.ndarray) -> tuple[np.ndarray, np.ndarray, n
         return nan, nan, nan
     values = _element_major(draws)
     split = _split_chains(values)
-    z_split = _z_scale(split)
-    if draws.shape[0] < 2:
-        rhat = nan
+    pooled_split = split.reshape(split.shape[0], -1)
+    if draws.shape[1] % 2:  # the split chains drop each chain's middle draw; quantiles keep it
+        tail_quantiles = np.quantile(values.reshape(values.shape[0], -1), _TAIL_PROBABILITIES,
+                                     axis=1).T.copy()
     else:
-        folded = np.abs(split - np.median(split.reshape(split.shape[0], -1), axis=1)[:, None, None])
-        rhat = np.maximum(_rhat(z_split), _rhat(_z_scale(folded)))
-    ess_bulk = _ess(z_split)
-    pooled = values.reshape(values.shape[0], -1)
-    tails = [_ess(_split_chains((values <= np.quantile(pooled, q, axis=1)[:, None, None])
-                                .astype(float))) for q in (0.05, 0.95)]
+        tail_quantiles = np.empty((0, 2))
+    previous, following, gamma = _quantile_positions(pooled_split.shape[1])
+    stats = _rank_statistics(pooled_split, np.argsort(pooled_split, axis=1),
+                             _normal_scores(pooled_split.shape[1]), split.shape[1],
+                             tail_quantiles, previous, following, gamma, draws.shape[0] >= 2)
     invalid = np.isnan(draws).any(axis=(0, 1))
-    return tuple(np.where(invalid, np.nan, stat) for stat in (rhat, ess_bulk, np.minimum(*tails)))
+    return tuple(np.where(invalid, np.nan, stat) for stat in stats)
 
 
 def mean_ess(draws: np.ndarray) -> np.ndarray:
@@ -164,7 +164,8 @@ def mean_ess(draws: np.ndarray) -> np.ndarray:
     "mean": split chains, no rank normalisation); NaN where ArviZ gives NaN."""
     if draws.shape[1] < 4:
         return np.full(draws.shape[2], np.nan)
-    ess = _ess(_split_chains(_element_major(draws)))
+    split = _split_chains(_element_major(draws))
+    ess = _ess_per_element(split.reshape(split.shape[0], -1), split.shape[1])
     return np.where(np.isnan(draws).any(axis=(0, 1)), np.nan, ess)
 
 
@@ -192,90 +193,194 @@ def _split_chains(values: np.ndarray) -> np.ndarray:
     return np.concatenate([values[:, :, :half], values[:, :, values.shape[2] - half:]], axis=1)
 
 
-def _z_scale(values: np.ndarray) -> np.ndarray:
-    """Normal scores of the pooled ranks (average ranks for ties; Blom's offset 3/8)."""
-    pooled = values.reshape(values.shape[0], -1)
-    # numpy's default argsort is several times faster than the stable sort scipy's rankdata
-    # uses, and average ranks do not depend on the order within a tie.
-    ranks = _average_ranks(pooled, np.argsort(pooled, axis=1))
-    return ndtri((ranks - 0.375) / (pooled.shape[1] + 0.25)).reshape(values.shape)
+_TAIL_PROBABILITIES = np.array([0.05, 0.95])
+
+
+@lru_cache(maxsize=8)
+def _normal_scores(size: int) -> np.ndarray:
+    """Rank normalisation's normal score of every possible average rank 1, 1.5, ..., size
+    (Blom's offset 3/8), indexed by twice the rank minus 2."""
+    ranks = np.arange(2 * size - 1) / 2.0 + 1.0
+    return ndtri((ranks - 0.375) / (size + 0.25))
+
+
+def _quantile_positions(size: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Sorted positions and weights of the 5% and 95% quantiles of ``size`` values, as NumPy's
+    default ("linear") np.quantile places them."""
+    virtual = (size - 1) * _TAIL_PROBABILITIES
+    previous = np.clip(np.floor(virtual), 0, size - 1)
+    following = np.clip(previous + 1, 0, size - 1)
+    return previous.astype(np.int64), following.astype(np.int64), virtual - previous
+
+
+@numba.njit(cache=True, error_model="numpy")
+def _rank_statistics(pooled, order, scores, chains, tail_quantiles, previous, following, gamma,
+                     with_rhat):
+    """(R-hat, bulk ESS, tail ESS) x element from split chains pooled per element (element x
+    chains*n, chain after chain) and each row's sorting order. The folded draws' order is
+    merged outward from the median instead of sorted again; the tail quantiles come from the
+    sorted draws unless given (odd draw counts)."""
+    elements, size = pooled.shape
+    n = size // chains
+    out = np.full((3, elements), np.nan)
+    z = np.empty(size)
+    z_folded = np.empty(size)
+    folded = np.empty(size)
+    folded_order = np.empty(size, dtype=np.int64)
+    indicator = np.empty(size)
+    centred = np.empty(size)
+    rho = np.empty(n)
+    for j in range(elements):
+        x, rank_order = pooled[j], order[j]
+        if np.isnan(x[rank_order[size - 1]]):  # NaN sorts last
+            continue
+        _scores_by_rank(x, rank_order, scores, z)
+        out[1, j] = _geyer_ess(z, chains, n, centred, rho)
+        if with_rhat:
+            median = (x[rank_order[size // 2 - 1]] + x[rank_order[size // 2]]) / 2.0
+            _folded_order(x, rank_order, median, folded, folded_order)
+            _scores_by_rank(folded, folded_order, scores, z_folded)
+            out[0, j] = np.maximum(_split_rhat(z, chains, n), _split_rhat(z_folded, chains, n))
+        tail = np.inf
+        for q in range(2):
+            if tail_quantiles.shape[0]:
+                value = tail_quantiles[j, q]
+            else:
+                value = _lerp(x[rank_order[previous[q]]], x[rank_order[following[q]]], gamma[q])
+            for i in range(size):
+                indicator[i] = 1.0 if x[i] <= value else 0.0
+            ess = _geyer_ess(indicator, chains, n, centred, rho)
+            tail = ess if np.isnan(ess) or ess < tail else tail
+        out[2, j] = tail
+    return out
 
 
 @numba.njit(cache=True)
-def _average_ranks(values, order):
-    """Ranks 1..m along each row, ties given their average rank (scipy's method "average")."""
-    rows, m = values.shape
-    ranks = np.empty((rows, m))
-    for i in range(rows):
-        start = 0
-        while start < m:
-            end = start
-            while end + 1 < m and values[i, order[i, end + 1]] == values[i, order[i, start]]:
-                end += 1
-            rank = (start + end) / 2.0 + 1.0
-            for position in range(start, end + 1):
-                ranks[i, order[i, position]] = rank
-            start = end + 1
-    return ranks
+def _scores_by_rank(values, order, scores, out):
+    """Normal score of each value's pooled rank, ties given their average rank (scipy's
+    rankdata method "average"); ``scores`` from :func:`_normal_scores`."""
+    size = values.size
+    start = 0
+    while start < size:
+        end = start
+        while end + 1 < size and values[order[end + 1]] == values[order[start]]:
+            end += 1
+        score = scores[start + end]  # average rank (start + end) / 2 + 1
+        for position in range(start, end + 1):
+            out[order[position]] = score
+        start = end + 1
 
 
-def _rhat(values: np.ndarray) -> np.ndarray:
-    n = values.shape[2]
-    between = n * np.var(values.mean(axis=2), axis=1, ddof=1)
-    within = np.var(values, axis=2, ddof=1).mean(axis=1)
+@numba.njit(cache=True)
+def _folded_order(values, order, median, folded, folded_order):
+    """|values - median| and its sorting order, merged from the two sorted runs that start at
+    the median and move outward (values sorted by ``order``)."""
+    size = values.size
+    for i in range(size):
+        folded[i] = abs(values[i] - median)
+    below, above = size // 2 - 1, size // 2
+    for k in range(size):
+        if above >= size or (below >= 0 and folded[order[below]] <= folded[order[above]]):
+            folded_order[k] = order[below]
+            below -= 1
+        else:
+            folded_order[k] = order[above]
+            above += 1
+
+
+@numba.njit(cache=True)
+def _lerp(low, high, weight):
+    """NumPy's interpolation between neighbouring sorted values (np.quantile, "linear")."""
+    if weight >= 0.5:
+        return high - (high - low) * (1.0 - weight)
+    return low + (high - low) * weight
+
+
+@numba.njit(cache=True)
+def _split_rhat(series, chains, n):
+    """Split R-hat of one element's series (chains * n, chain after chain)."""
+    means = np.empty(chains)
+    within = 0.0
+    for c in range(chains):
+        chain = series[c * n:(c + 1) * n]
+        means[c] = chain.mean()
+        within += ((chain - means[c]) ** 2).sum() / (n - 1)
+    within /= chains
+    between = n * ((means - means.mean()) ** 2).sum() / (chains - 1)
     return np.sqrt((between / within + n - 1) / n)
 
 
-def _ess(values: np.ndarray) -> np.ndarray:
-    chains, n = values.shape[1:]
-    centred = values - values.mean(axis=2, keepdims=True)
-    length = next_fast_len(2 * n)
-    spectrum = np.fft.rfft(centred, n=length, axis=2)
-    spectrum *= np.conjugate(spectrum)
-    autocovariance = np.fft.irfft(spectrum, n=length, axis=2)[:, :, :n] / n
-    mean_autocovariance = np.ascontiguousarray(autocovariance.mean(axis=1))  # element x lag
-    mean_var = mean_autocovariance[:, 0] * n / (n - 1.0)
+@numba.njit(cache=True)
+def _lagged_sum(centred, start, n, lag):
+    """sum_i centred[start + i] * centred[start + i + lag] (BLAS dot: 3-4x a plain loop)."""
+    return np.dot(centred[start:start + n - lag], centred[start + lag:start + n])
+
+
+@numba.njit(cache=True)
+def _mean_autocovariance(centred, chains, n, lag):
+    """The chains' mean autocovariance at ``lag`` (ArviZ divides each by n)."""
+    total = 0.0
+    for c in range(chains):
+        total += _lagged_sum(centred, c * n, n, lag) / n
+    return total / chains
+
+
+@numba.njit(cache=True, error_model="numpy")  # a constant series divides by 0; handled first
+def _geyer_ess(series, chains, n, centred, rho):
+    """ESS of one element's series (chains * n, chain after chain) from Geyer's initial
+    positive and initial monotone sequences, as ArviZ's _ess. Autocovariances are summed
+    directly, one lag at a time as the sequence needs them: the sequence usually stops after
+    a few dozen lags, long before an FFT of every lag pays off."""
+    total = chains * n
+    if series.max() - series.min() < _RESOLUTION:
+        return float(total)
+    means = np.empty(chains)
+    for c in range(chains):
+        means[c] = series[c * n:(c + 1) * n].mean()
+        centred[c * n:(c + 1) * n] = series[c * n:(c + 1) * n] - means[c]
+    mean_var = _mean_autocovariance(centred, chains, n, 0) * n / (n - 1.0)
     var_plus = mean_var * (n - 1.0) / n
     if chains > 1:
-        var_plus = var_plus + np.var(values.mean(axis=2), axis=1, ddof=1)
-    ess = _geyer_ess(mean_autocovariance, mean_var, var_plus, chains * n)
-    constant = values.max(axis=(1, 2)) - values.min(axis=(1, 2)) < np.finfo(float).resolution
-    return np.where(constant, float(chains * n), ess)
+        var_plus += ((means - means.mean()) ** 2).sum() / (chains - 1)
+    rho[:] = 0.0
+    rho_even = 1.0
+    rho_odd = 1.0 - (mean_var - _mean_autocovariance(centred, chains, n, 1)) / var_plus
+    rho[0], rho[1] = rho_even, rho_odd
+    t = 1
+    while t < n - 3 and rho_even + rho_odd > 0.0:
+        rho_even = 1.0 - (mean_var - _mean_autocovariance(centred, chains, n, t + 1)) / var_plus
+        rho_odd = 1.0 - (mean_var - _mean_autocovariance(centred, chains, n, t + 2)) / var_plus
+        if rho_even + rho_odd >= 0.0:
+            rho[t + 1] = rho_even
+            rho[t + 2] = rho_odd
+        t += 2
+    max_t = t - 2
+    if rho_even > 0.0:
+        rho[max_t + 1] = rho_even
+    t = 1
+    while t <= max_t - 2:
+        if rho[t + 1] + rho[t + 2] > rho[t - 1] + rho[t]:
+            rho[t + 1] = (rho[t - 1] + rho[t]) / 2.0
+            rho[t + 2] = rho[t + 1]
+        t += 2
+    tau = -1.0 + 2.0 * rho[:max_t + 1].sum() + rho[max_t + 1]
+    tau = max(tau, 1.0 / np.log10(total))
+    return np.nan if np.isnan(rho).any() else total / tau
 
 
-@numba.njit(cache=True, error_model="numpy")  # constant elements divide by 0; _ess replaces them
-def _geyer_ess(mean_autocovariance, mean_var, var_plus, total):
-    """ESS from Geyer's initial positive and initial monotone sequences, per element."""
-    elements, n = mean_autocovariance.shape
+@numba.njit(cache=True)
+def _ess_per_element(pooled, chains):
+    """:func:`_geyer_ess` of every row of ``pooled`` (element x chains*n)."""
+    elements, size = pooled.shape
+    n = size // chains
     out = np.empty(elements)
-    rho = np.zeros(n)
+    centred, rho = np.empty(size), np.empty(n)
     for j in range(elements):
-        acov = mean_autocovariance[j]
-        rho[:] = 0.0
-        rho_even = 1.0
-        rho_odd = 1.0 - (mean_var[j] - acov[1]) / var_plus[j]
-        rho[0], rho[1] = rho_even, rho_odd
-        t = 1
-        while t < n - 3 and rho_even + rho_odd > 0.0:
-            rho_even = 1.0 - (mean_var[j] - acov[t + 1]) / var_plus[j]
-            rho_odd = 1.0 - (mean_var[j] - acov[t + 2]) / var_plus[j]
-            if rho_even + rho_odd >= 0.0:
-                rho[t + 1] = rho_even
-                rho[t + 2] = rho_odd
-            t += 2
-        max_t = t - 2
-        if rho_even > 0.0:
-            rho[max_t + 1] = rho_even
-        t = 1
-        while t <= max_t - 2:
-            if rho[t + 1] + rho[t + 2] > rho[t - 1] + rho[t]:
-                rho[t + 1] = (rho[t - 1] + rho[t]) / 2.0
-                rho[t + 2] = rho[t + 1]
-            t += 2
-        tau = -1.0 + 2.0 * rho[:max_t + 1].sum() + rho[max_t + 1]
-        tau = max(tau, 1.0 / np.log10(total))
-        out[j] = np.nan if np.isnan(rho).any() else total / tau
+        out[j] = _geyer_ess(pooled[j], chains, n, centred, rho)
     return out
+
+
+_RESOLUTION = np.finfo(float).resolution
 
 
 def _varies(draws: xr.DataArray) -> bool:
