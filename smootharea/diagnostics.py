@@ -131,10 +131,10 @@ def _element_blocks(draws: xr.DataArray, block: int) -> Iterator[np.ndarray]:
 
 # --------------------------------------------------- R-hat and ESS, all elements at once
 # Vehtari, Gelman, Simpson, Carpenter & Buerkner (2021), exactly as ArviZ 0.23 computes them,
-# vectorised over the elements (last axis of draws shaped chain x draw x element). Why by hand:
-# ArviZ runs its ESS one element at a time in Python (Geyer's sequence with a NumPy call per
-# lag), which took 10-14 s per convergence check at 3,024 areas (4 x 750 draws) and minutes at
-# 30,000 - more than the sampling between checks. Checked against ArviZ in tests/test_models.py.
+# for every element (last axis of draws shaped chain x draw x element) in one compiled pass. Why
+# by hand: ArviZ runs its ESS one element at a time in Python (Geyer's sequence with a NumPy call
+# per lag), which took 10-14 s per convergence check at 3,024 areas (4 x 750 draws) and minutes
+# at 30,000 - more than the sampling between checks. Checked against ArviZ in tests/test_models.py.
 
 def convergence_statistics(draws: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """(rank R-hat, bulk ESS, tail ESS) per element of draws shaped chain x draw x element;
