@@ -10,8 +10,8 @@ R-hat and ESS are ArviZ's definitions (ArviZ 0.23: az.rhat method "rank", az.ess
 from __future__ import annotations
 
 import math
-from functools import lru_cache
 from dataclasses import asdict, dataclass, field
+from functools import lru_cache
 from typing import Any, Iterator, Sequence
 
 import arviz as az
@@ -146,15 +146,13 @@ def convergence_statistics(draws: np.ndarray) -> tuple[np.ndarray, np.ndarray, n
     values = _element_major(draws)
     split = _split_chains(values)
     pooled_split = split.reshape(split.shape[0], -1)
-    if draws.shape[1] % 2:  # the split chains drop each chain's middle draw; quantiles keep it
-        tail_quantiles = np.quantile(values.reshape(values.shape[0], -1), _TAIL_PROBABILITIES,
-                                     axis=1).T.copy()
-    else:
-        tail_quantiles = np.empty((0, 2))
-    previous, following, gamma = _quantile_positions(pooled_split.shape[1])
+    # Tail quantiles over all draws, as ArviZ takes them (the split chains drop each chain's
+    # middle draw when the count is odd).
+    tail_quantiles = np.quantile(values.reshape(values.shape[0], -1), _TAIL_PROBABILITIES,
+                                 axis=1).T.copy()
     stats = _rank_statistics(pooled_split, np.argsort(pooled_split, axis=1),
                              _normal_scores(pooled_split.shape[1]), split.shape[1],
-                             tail_quantiles, previous, following, gamma, draws.shape[0] >= 2)
+                             tail_quantiles, draws.shape[0] >= 2)
     invalid = np.isnan(draws).any(axis=(0, 1))
     return tuple(np.where(invalid, np.nan, stat) for stat in stats)
 
@@ -194,6 +192,7 @@ def _split_chains(values: np.ndarray) -> np.ndarray:
 
 
 _TAIL_PROBABILITIES = np.array([0.05, 0.95])
+_RESOLUTION = np.finfo(float).resolution  # a series varying less than this counts as constant
 
 
 @lru_cache(maxsize=8)
@@ -204,22 +203,11 @@ def _normal_scores(size: int) -> np.ndarray:
     return ndtri((ranks - 0.375) / (size + 0.25))
 
 
-def _quantile_positions(size: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Sorted positions and weights of the 5% and 95% quantiles of ``size`` values, as NumPy's
-    default ("linear") np.quantile places them."""
-    virtual = (size - 1) * _TAIL_PROBABILITIES
-    previous = np.clip(np.floor(virtual), 0, size - 1)
-    following = np.clip(previous + 1, 0, size - 1)
-    return previous.astype(np.int64), following.astype(np.int64), virtual - previous
-
-
 @numba.njit(cache=True, error_model="numpy")
-def _rank_statistics(pooled, order, scores, chains, tail_quantiles, previous, following, gamma,
-                     with_rhat):
+def _rank_statistics(pooled, order, scores, chains, tail_quantiles, with_rhat):
     """(R-hat, bulk ESS, tail ESS) x element from split chains pooled per element (element x
-    chains*n, chain after chain) and each row's sorting order. The folded draws' order is
-    merged outward from the median instead of sorted again; the tail quantiles come from the
-    sorted draws unless given (odd draw counts)."""
+    chains*n, chain after chain), each row's sorting order and its 5% and 95% quantiles. The
+    folded draws' order is merged outward from the median instead of sorted again."""
     elements, size = pooled.shape
     n = size // chains
     out = np.full((3, elements), np.nan)
@@ -243,12 +231,8 @@ def _rank_statistics(pooled, order, scores, chains, tail_quantiles, previous, fo
             out[0, j] = np.maximum(_split_rhat(z, chains, n), _split_rhat(z_folded, chains, n))
         tail = np.inf
         for q in range(2):
-            if tail_quantiles.shape[0]:
-                value = tail_quantiles[j, q]
-            else:
-                value = _lerp(x[rank_order[previous[q]]], x[rank_order[following[q]]], gamma[q])
             for i in range(size):
-                indicator[i] = 1.0 if x[i] <= value else 0.0
+                indicator[i] = 1.0 if x[i] <= tail_quantiles[j, q] else 0.0
             ess = _geyer_ess(indicator, chains, n, centred, rho)
             tail = ess if np.isnan(ess) or ess < tail else tail
         out[2, j] = tail
@@ -286,14 +270,6 @@ def _folded_order(values, order, median, folded, folded_order):
         else:
             folded_order[k] = order[above]
             above += 1
-
-
-@numba.njit(cache=True)
-def _lerp(low, high, weight):
-    """NumPy's interpolation between neighbouring sorted values (np.quantile, "linear")."""
-    if weight >= 0.5:
-        return high - (high - low) * (1.0 - weight)
-    return low + (high - low) * weight
 
 
 @numba.njit(cache=True)
@@ -378,9 +354,6 @@ def _ess_per_element(pooled, chains):
     for j in range(elements):
         out[j] = _geyer_ess(pooled[j], chains, n, centred, rho)
     return out
-
-
-_RESOLUTION = np.finfo(float).resolution
 
 
 def _varies(draws: xr.DataArray) -> bool:

@@ -263,9 +263,8 @@ def _verdict_at(batches: list, judged: list[str], per_area: set[str], checkpoint
     """The convergence verdict on the first ``checkpoint`` draws of every chain.
 
     The verdict is a conjunction, so the scalar parameters (and the sampler statistics)
-    are judged first, and the per-area variables (read only if those pass, from a disk
-    trace) are judged
-    :data:`AREA_BLOCK` areas at a time up to the first block that fails. A failing result
+    are judged first, then the per-area variables :data:`AREA_BLOCK` areas at a time up to
+    the first block that fails. A failing result
     describes only what was judged up to the failure (its ``converged`` and ``divergences``
     are what count); a passing one covers every judged variable and is the run's verdict
     (:func:`smootharea.diagnostics.combine_verdicts`). Why: on the 3,024-cell grid the checks

@@ -61,21 +61,23 @@ def test_irregular_graph_matches_dense_pseudo_inverse():
     assert scaling_factor(n, edges) == pytest.approx(np.exp(np.mean(np.log(dense))), rel=1e-9)
 
 
+def path_modes(m):
+    """Eigenvalues 2 - 2 cos(pi a / m) of the Laplacian of a path of m nodes, and the squares
+    of its DCT-II eigenvectors cos(pi a (x + 1/2) / m) (Strang 1999, SIAM Review 41, "The
+    discrete cosine transform"). A rook lattice's Laplacian is L_rows (x) I + I (x) L_cols,
+    so its eigenvalues are the sums of the two paths'."""
+    a = np.arange(m)
+    values = 2 - 2 * np.cos(np.pi * a / m)
+    vectors = np.cos(np.pi * np.outer(np.arange(m) + 0.5, a) / m)
+    vectors /= np.linalg.norm(vectors, axis=0)
+    return values, vectors**2
+
+
 def spectral_lattice_diagonal(rows, cols):
-    """diag(Q^+) of a rook lattice from its known eigen-decomposition (independent route).
-
-    The lattice Laplacian is L_rows (x) I + I (x) L_cols; a path of m nodes has eigenvalues
-    2 - 2 cos(pi a / m) with DCT-II eigenvectors cos(pi a (x + 1/2) / m) (Strang 1999,
-    SIAM Review 41, "The discrete cosine transform"). So diag(Q^+)_(x,y) =
-    sum_{(a,b) != (0,0)} u_a(x)^2 v_b(y)^2 / (lambda_a + mu_b).
+    """diag(Q^+) of a rook lattice from its known eigen-decomposition (independent route,
+    :func:`path_modes`): diag(Q^+)_(x,y) = sum_{(a,b) != (0,0)} u_a(x)^2 v_b(y)^2 /
+    (lambda_a + mu_b).
     """
-    def path_modes(m):
-        a = np.arange(m)
-        values = 2 - 2 * np.cos(np.pi * a / m)
-        vectors = np.cos(np.pi * np.outer(np.arange(m) + 0.5, a) / m)
-        vectors /= np.linalg.norm(vectors, axis=0)
-        return values, vectors**2
-
     row_values, row_squares = path_modes(rows)
     col_values, col_squares = path_modes(cols)
     total = row_values[:, None] + col_values[None, :]
@@ -196,8 +198,7 @@ def test_link_files_with_unknown_ids_or_missing_links_are_input_problems(north_c
 def test_smallest_laplacian_eigenpairs_are_the_same_on_every_build():
     # Reproducibility (same seed, same draws) needs the PC prior's tables, built from these
     # eigenpairs, equal to the last bit: ARPACK's default start vector is random. The values
-    # themselves are checked against the closed-form lattice spectrum (Laplacian of a rook
-    # lattice: 4 sin^2(pi i / 2r) + 4 sin^2(pi j / 2c), a fact of the trade).
+    # themselves are checked against the lattice's known spectrum (path_modes, Strang 1999).
     rows, cols = 30, 40
     edges = lattice_edges(rows, cols)
     results = []
@@ -208,7 +209,5 @@ def test_smallest_laplacian_eigenpairs_are_the_same_on_every_build():
     for values, vectors in results[1:]:
         assert np.array_equal(values, results[0][0])
         assert np.array_equal(vectors, results[0][1])
-    i, j = np.meshgrid(np.arange(rows), np.arange(cols), indexing="ij")
-    spectrum = np.sort((4 * np.sin(np.pi * i / (2 * rows)) ** 2
-                        + 4 * np.sin(np.pi * j / (2 * cols)) ** 2).ravel())
+    spectrum = np.sort((path_modes(rows)[0][:, None] + path_modes(cols)[0][None, :]).ravel())
     np.testing.assert_allclose(results[0][0], spectrum[1:7], rtol=1e-8)
