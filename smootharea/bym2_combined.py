@@ -426,7 +426,9 @@ def combined_bym2_effect(graph: NeighbourGraph, layout, sigma, phi, sqrt_one_min
     z = pm.Normal("effect_component_mean", 0.0, 1.0, shape=sizes.size)
     connected = ~layout.island_mask
     means = pt.zeros(n)
-    if connected.any():
+    if layout.is_one_component:
+        means = z[0] / np.sqrt(sizes[0])   # broadcast: every area shares the one mean
+    elif connected.any():
         means = pt.set_subtensor(means[np.flatnonzero(connected)],
                                  (z / np.sqrt(sizes))[component_index[connected]])
     effect = within + sigma * sqrt_one_minus_phi * means

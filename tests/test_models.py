@@ -108,6 +108,23 @@ def test_icar_edge_sum_equals_quadratic_form():
         np.testing.assert_allclose(gradient, -q @ u, rtol=1e-12, atol=1e-12)
 
 
+def test_zero_sum_map_on_one_component_equals_the_general_map():
+    # The one-component shortcut (no gather or scatter) against the general per-component map
+    # on the same 20 connected NC counties: same u to rounding, sum zero, an isometry.
+    study = nc_study(first=20)
+    layout = IcarLayout.from_graph(nc_graph(study))
+    assert layout.is_one_component
+    general = dataclasses.replace(layout, component_sizes=np.append(layout.component_sizes, 0.0))
+    assert not general.is_one_component  # an empty extra component takes the general path
+    free = pt.dvector("free")
+    z = np.random.default_rng(3).normal(size=layout.n_free)
+    u_short, u_general = (pytensor.function([free], zero_sum_by_component(free, chosen))(z)
+                          for chosen in (layout, general))
+    np.testing.assert_allclose(u_short, u_general, rtol=1e-12, atol=1e-14)
+    assert abs(u_short.sum()) < 1e-12
+    assert np.linalg.norm(u_short) == pytest.approx(np.linalg.norm(z), rel=1e-12)
+
+
 def test_zero_sum_map_is_an_isometry_with_zero_component_sums():
     study = nc_study(first=20)
     layout = IcarLayout.from_graph(split_graph(study))
@@ -219,22 +236,24 @@ def scaled_bym2_covariance(graph, sigma: float, phi: float) -> np.ndarray:
     return covariance
 
 
-def test_combined_bym2_density_is_the_bym2_gaussian_with_components_and_island():
+@pytest.mark.parametrize("split", [True, False], ids=["components_and_island", "one_component"])
+def test_combined_bym2_density_is_the_bym2_gaussian(split):
     # Reference: scipy.stats.multivariate_normal with the BYM2 covariance built densely from
     # numpy's pseudo-inverse. The model samples b as (sum-to-zero part, one mean per component,
     # islands); its log density, with the Jacobian of that linear map, must equal the dense
-    # Gaussian up to one constant for every sigma, phi and b.
+    # Gaussian up to one constant for every sigma, phi and b. The connected graph takes the
+    # one-component shortcut of the sum-to-zero map and of the component mean.
     study = nc_study(first=20)
-    graph = split_graph(study)
+    graph = split_graph(study) if split else nc_graph(study)
     rng = np.random.default_rng(11)
     differences = []
     for sigma, phi in ((0.3, 0.2), (0.8, 0.7), (1.5, 0.999), (0.5, 1e-3)):
         recipe = (load_recipe("bym2").with_prior("sigma", "fixed", value=sigma)
                   .with_prior("phi", "fixed", value=phi))
         model = build_model(study, graph, recipe)
-        terms = model.replace_rvs_by_values(
-            [model["combined_bym2"], model.logp(vars=[model["effect_component_mean"],
-                                                      model["v_island"]], sum=True)])
+        others = [model["effect_component_mean"]] + ([model["v_island"]] if split else [])
+        terms = model.replace_rvs_by_values([model["combined_bym2"],
+                                             model.logp(vars=others, sum=True)])
         log_b = pt.log(model.replace_rvs_by_values([model["relative_risk"]])[0])
         evaluate = model.compile_fn([terms[0] + terms[1], log_b], inputs=model.value_vars,
                                     on_unused_input="ignore", point_fn=False)
@@ -243,7 +262,9 @@ def test_combined_bym2_density_is_the_bym2_gaussian_with_components_and_island()
                      for v in model.value_vars}
             point["intercept_standardised"] = np.array(0.0)
             density, b = evaluate(**point)
-            jacobian = 2 * math.log(sigma * math.sqrt(1 - phi)) + math.log(sigma)
+            # one mean per component of two or more areas, sigma per island
+            means, islands = (2, 1) if split else (1, 0)
+            jacobian = means * math.log(sigma * math.sqrt(1 - phi)) + islands * math.log(sigma)
             reference = stats.multivariate_normal(np.zeros(graph.n_areas),
                                                   scaled_bym2_covariance(graph, sigma, phi)).logpdf(b)
             differences.append(density - jacobian - reference)
