@@ -691,14 +691,16 @@ def fit_quick(prepared: "PreparedStudy", recipe: "Recipe", sampling: "Sampling",
 
     Posterior variables as the sampler's: relative_risk (area), intercept, beta (covariate,
     original scale) and the recipe's hyperparameters; log_likelihood and observed_data
-    ``observed`` (dims area), so LOO and WAIC work. ``n_draws`` defaults to chains x draws
-    of ``sampling`` (at most MAX_DRAWS, and at most MAX_VALUES / areas), split over
-    ``sampling.chains`` chains of independent draws. The attrs record the method, the grid,
+    ``observed`` (dims area), so LOO and WAIC work. ``n_draws`` defaults to MAX_DRAWS (at most
+    MAX_VALUES / areas), split over ``sampling.chains`` chains of independent draws. Why not
+    the sampler's draw count: these draws are independent and cheap, and their Monte Carlo
+    error was most of the preview's difference from the sampler (demo: largest exceedance
+    difference 0.051 with 2,000 draws, 0.023 with 4,000, 0.019 with 40,000). The attrs record the method, the grid,
     the hyperparameter mode and the time of each stage.
     """
     chains = max(1, int(sampling.chains))
     limit = max(chains, min(MAX_DRAWS, MAX_VALUES // max(1, prepared.study.n_areas)))
-    total = n_draws or min(limit, chains * int(sampling.draws))
+    total = n_draws or limit
     per_chain = max(1, total // chains)
     rng = np.random.default_rng(sampling.seed)
     study = prepared.study
