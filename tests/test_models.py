@@ -664,6 +664,20 @@ def test_convergence_statistics_equal_arviz():
                                            rtol=1e-12)
 
 
+def test_bfmi_equals_arviz():
+    # Reference: ArviZ 0.23's az.bfmi on energies of a well-mixed and a sticky chain (E-BFMI,
+    # Betancourt 2016); the verdict's threshold of 0.3 must separate them.
+    from smootharea.diagnostics import _bfmi
+
+    rng = np.random.default_rng(8)
+    energy = np.stack([rng.normal(size=500), np.cumsum(rng.normal(size=500)) * 0.1,
+                       rng.normal(size=500)])
+    idata = az.from_dict(sample_stats={"energy": energy})
+    ours = _bfmi(idata)
+    np.testing.assert_allclose(ours, az.bfmi(idata), rtol=1e-12)
+    assert ours[0] > 0.3 > ours[1]
+
+
 def test_verdict_passes_ideal_chains():
     # Vehtari et al. 2021 thresholds; independent draws must pass all of them.
     verdict = assess_convergence(_fake_posterior())
