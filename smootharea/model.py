@@ -302,8 +302,9 @@ def zero_sum_by_component(free: pt.TensorVariable, layout: IcarLayout) -> pt.Ten
     sum-zero subspace (as in PyMC's ZeroSumTransform), so the ICAR density keeps its form.
     """
     if layout.is_one_component:
-        # The same map without the gather and scatter of the general case: about a third
-        # of the log density's cost outside the BYM2 solve at 3,024 areas.
+        # The same map without the general case's gather and scatter, which took about half
+        # of the log density and gradient outside the BYM2 solve at 3,024 areas (0.13-0.15 ms
+        # against 0.05-0.08 ms).
         size = float(layout.component_sizes[0])
         total = pt.sum(free)
         shift = total / (np.sqrt(size) + size)

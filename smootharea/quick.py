@@ -695,8 +695,8 @@ def fit_quick(prepared: "PreparedStudy", recipe: "Recipe", sampling: "Sampling",
     MAX_VALUES / areas), split over ``sampling.chains`` chains of independent draws. Why not
     the sampler's draw count: these draws are independent and cheap, and their Monte Carlo
     error was most of the preview's difference from the sampler (demo: largest exceedance
-    difference 0.051 with 2,000 draws, 0.023 with 4,000, 0.019 with 40,000). The attrs record the method, the grid,
-    the hyperparameter mode and the time of each stage.
+    difference 0.051 with 2,000 draws, 0.023 with 4,000, 0.019 with 40,000). The attrs
+    record the method, the grid, the hyperparameter mode and the time of each stage.
     """
     chains = max(1, int(sampling.chains))
     limit = max(chains, min(MAX_DRAWS, MAX_VALUES // max(1, prepared.study.n_areas)))
