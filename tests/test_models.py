@@ -567,6 +567,42 @@ def test_same_seed_gives_identical_draws_even_when_the_run_is_extended():
     assert verdict.converged and verdict.min_ess_bulk >= 400, verdict.reasons
 
 
+@pytest.mark.parametrize("cpus, moves", [(2, False), (3, True)], ids=["no_spare_core", "spare_core"])
+def test_chains_wait_while_a_check_judges_their_draws_unless_a_core_is_spare(monkeypatch, cpus,
+                                                                             moves):
+    # sampling._advance: 2 chains on 2 cores leave no core for the check, so they pause while
+    # it runs (their draw counts stand still); with a spare core they keep drawing. The fake
+    # check fails at checkpoint 100 and passes at 150; the cap is too far to reach meanwhile.
+    import time as clock
+
+    import smootharea.sampling as sampling_module
+    from smootharea.diagnostics import Verdict
+
+    moved = []
+
+    def draws_reported(batches) -> int:
+        return sum(int(batch.progress.finished.sum()) for batch in batches)
+
+    def slow_failing_check(batches, judged, per_area, checkpoint):
+        clock.sleep(0.6)  # progress is reported every 0.25 s: let the last report arrive
+        before = draws_reported(batches)
+        clock.sleep(1.5)
+        moved.append(draws_reported(batches) > before)
+        passed = checkpoint >= 150
+        return Verdict(converged=passed, reasons=[] if passed else ["fake"], max_rhat=1.0,
+                       min_ess_bulk=500.0, min_ess_tail=500.0, divergences=0, min_bfmi=1.0)
+
+    monkeypatch.setattr(sampling_module.os, "cpu_count", lambda: cpus)
+    monkeypatch.setattr(sampling_module, "_verdict_at", slow_failing_check)
+    model, recipe = small_conjugate_model()
+    sampling = Sampling(chains=2, draws=100, warmup=100, seed=1, cores=2, max_draws=1_000_000)
+    idata = sample_posterior(model, sampling, recipe, progress=False)
+    assert idata.posterior.sizes["draw"] == 150 and len(moved) == 2
+    assert moved[0] == moves, moved
+    if not moves:
+        assert moved == [False, False]
+
+
 def test_trace_on_disk_gives_the_same_draws_as_in_memory(monkeypatch, tmp_path):
     # Large traces go to a zarr store on disk (sampling.DISK_TRACE_BYTES); forcing that path
     # on a small model must change nothing but where the draws were kept.
