@@ -583,7 +583,7 @@ def test_chains_wait_while_a_check_judges_their_draws_unless_a_core_is_spare(mon
     def draws_reported(batches) -> int:
         return sum(int(batch.progress.finished.sum()) for batch in batches)
 
-    def slow_failing_check(batches, judged, per_area, checkpoint):
+    def slow_check(batches, judged, per_area, checkpoint):
         clock.sleep(0.6)  # progress is reported every 0.25 s: let the last report arrive
         before = draws_reported(batches)
         clock.sleep(1.5)
@@ -593,7 +593,7 @@ def test_chains_wait_while_a_check_judges_their_draws_unless_a_core_is_spare(mon
                        min_ess_bulk=500.0, min_ess_tail=500.0, divergences=0, min_bfmi=1.0)
 
     monkeypatch.setattr(sampling_module.os, "cpu_count", lambda: cpus)
-    monkeypatch.setattr(sampling_module, "_verdict_at", slow_failing_check)
+    monkeypatch.setattr(sampling_module, "_verdict_at", slow_check)
     model, recipe = small_conjugate_model()
     sampling = Sampling(chains=2, draws=100, warmup=100, seed=1, cores=2, max_draws=1_000_000)
     idata = sample_posterior(model, sampling, recipe, progress=False)
