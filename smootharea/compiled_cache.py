@@ -20,7 +20,7 @@ error path (:func:`_copying_wrappers`).
 The cache folder is ``$SMOOTHAREA_CACHE_DIR`` (an empty value turns the disk cache
 off), else ``$XDG_CACHE_HOME/smootharea/compiled``, else ``~/.cache/smootharea/compiled``.
 Entries are keyed by structure plus package versions, CPU and the source of the
-model-building code, so any change there compiles afresh. An unreadable entry is
+model-building code (:data:`MODEL_SOURCES`), so any change there compiles afresh. An unreadable entry is
 ignored and rewritten.
 """
 from __future__ import annotations
@@ -119,11 +119,15 @@ def environment_fingerprint() -> str:
                  binding.get_host_cpu_features().flatten(), nutpie.__version__, pm.__version__,
                  pytensor.__version__, numba.__version__, llvmlite.__version__, np.__version__):
         digest.update(str(part).encode() + b"\0")
-    for module in ("model.py", "compiled_cache.py", "graph.py"):
+    for module in MODEL_SOURCES:
         digest.update((here / module).read_bytes())
     return digest.hexdigest()
 
 
+# Modules whose code or constants shape the compiled log density (model.py and what it
+# imports from smootharea), so a change to any of them compiles afresh.
+MODEL_SOURCES = ("model.py", "bym2_combined.py", "covariates.py", "frequentist.py", "graph.py",
+                 "problems.py", "quick.py", "recipes.py", "study.py", "compiled_cache.py")
 _fingerprint: str | None = None
 
 

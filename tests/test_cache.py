@@ -202,3 +202,31 @@ def test_copying_callbacks_return_what_nutpies_own_return(cache_folder, monkeypa
         np.testing.assert_array_equal(values, expected_values)
     assert codes[:3] == [0, 0, 0] and codes[3] != 0
     assert _call_logp(ours, points[0][:-1])[0] == -1  # wrong size
+
+
+def _relative_imports(source: Path) -> set[str]:
+    """smootharea modules a file imports (``from .x import``, at any depth), except under
+    ``if TYPE_CHECKING``."""
+    import ast
+
+    tree = ast.parse(source.read_text())
+    typing_only = {id(inner) for node in ast.walk(tree)
+                   if isinstance(node, ast.If) and "TYPE_CHECKING" in ast.unparse(node.test)
+                   for statement in node.body for inner in ast.walk(statement)}
+    return {f"{node.module.split('.')[0]}.py" for node in ast.walk(tree)
+            if isinstance(node, ast.ImportFrom) and node.level == 1 and node.module
+            and id(node) not in typing_only}
+
+
+def test_cache_key_covers_every_module_the_model_is_built_from():
+    """A change to any module model.py draws on (for instance the BYM2 solver's tolerance in
+    bym2_combined.py) must compile afresh rather than load stale machine code."""
+    package = ROOT / "smootharea"
+    reached, pending = set(), ["model.py"]
+    while pending:
+        module = pending.pop()
+        if module not in reached:
+            reached.add(module)
+            pending.extend(_relative_imports(package / module))
+    assert "bym2_combined.py" in reached
+    assert reached <= set(compiled_cache.MODEL_SOURCES), reached - set(compiled_cache.MODEL_SOURCES)
