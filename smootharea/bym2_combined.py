@@ -64,7 +64,7 @@ from .graph import NeighbourGraph
 # error in nats does not depend on sigma): at most 3.3e-5, 2.3e-4 and 2.5e-3 nats at 1e-3
 # (1.5e-5 on the grid at 1e-4). A perturbation eps of the log density moves a posterior mean by
 # at most sd(eps) times the quantity's posterior SD, here under 0.3% of it, against a Monte
-# Carlo error of 5% at 400 ESS. The gradient's error (up to 1e-2 relative) only lowers
+# Carlo error of 5% at 400 ESS. The gradient's error (measured up to 6e-3 relative) only lowers
 # acceptance, since the sampler stays exact for the value it is given; on the grid steps per
 # draw stayed 22-26 and sampling took 15.2-16.5 s against 17.5-19.3 s at 1e-4 (three seeds,
 # 4 x (300 + 1,000) draws).

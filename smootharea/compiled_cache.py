@@ -20,8 +20,8 @@ error path (:func:`_copying_wrappers`).
 The cache folder is ``$SMOOTHAREA_CACHE_DIR`` (an empty value turns the disk cache
 off), else ``$XDG_CACHE_HOME/smootharea/compiled``, else ``~/.cache/smootharea/compiled``.
 Entries are keyed by structure plus package versions, CPU and the source of the
-model-building code (:data:`MODEL_SOURCES`), so any change there compiles afresh. An unreadable entry is
-ignored and rewritten.
+model-building code (:data:`MODEL_SOURCES`), so any change there compiles afresh. An
+unreadable entry is ignored and rewritten.
 """
 from __future__ import annotations
 
