@@ -204,6 +204,44 @@ def test_copying_callbacks_return_what_nutpies_own_return(cache_folder, monkeypa
     assert _call_logp(ours, points[0][:-1])[0] == -1  # wrong size
 
 
+def test_straight_line_extraction_reads_the_arrays_nutpies_extraction_reads():
+    """compiled_cache._straight_line_extraction against nutpie's own make_extraction_fn (the
+    reference, nutpie 0.16) on shared arrays of 0, 1 and 2 dimensions and two dtypes, read
+    through nutpie's user-data record after the data were swapped for arrays of other sizes."""
+    import numba
+    from nutpie.compile_pymc import (address_as_void_pointer, make_extraction_fn,
+                                     make_user_data, update_user_data)
+
+    def inner(x, scalar, counts, table):
+        return x.sum() * scalar[()] + counts.sum() + table[-1, 0] * table.shape[0] + table.shape[1]
+
+    arrays = {"scalar": np.array(2.5), "counts": np.arange(5, dtype=np.int32),
+              "table": np.arange(12.0).reshape(4, 3)}
+    names = list(arrays)
+
+    class Shared:  # what nutpie's make_user_data reads of a pytensor shared variable
+        def __init__(self, value):
+            self.ndim = value.ndim
+
+    user_data = make_user_data({name: Shared(value) for name, value in arrays.items()}, arrays)
+    inner_jit = numba.njit(inner)
+    ours = compiled_cache._straight_line_extraction(inner_jit, arrays, names, user_data.dtype)
+    reference = make_extraction_fn(inner_jit, arrays, names, user_data.dtype)
+
+    @numba.njit
+    def call(extract, x, address):
+        return extract(x, address_as_void_pointer(address))
+
+    x = np.array([1.0, 2.0])
+    swapped = {"scalar": np.array(-1.0), "counts": np.arange(7, dtype=np.int32) * 3,
+               "table": np.arange(10.0).reshape(2, 5) + 0.5}
+    for data in (arrays, swapped):
+        record = update_user_data(user_data, data)
+        address = record.ctypes.data
+        expected = inner(x, *(data[name] for name in names))
+        assert call(ours, x, address) == call(reference, x, address) == expected
+
+
 def _relative_imports(source: Path) -> set[str]:
     """smootharea modules a file imports (``from .x import``, at any depth), except under
     ``if TYPE_CHECKING``."""
