@@ -284,7 +284,8 @@ def _straight_line_extraction(inner, shared_data: dict, names: list[str], record
                      f"int(shared['size'][{name!r}][()]), dtype{index}).reshape(({shape}))")
     arguments = "".join(f", array{index}" for index in range(len(names)))
     lines.append(f"    return inner(x{arguments})")
-    exec(compile("\n".join(lines), f"<extraction of {len(names)} shared arrays>", "exec"), namespace)
+    source = "\n".join(lines)
+    exec(compile(source, f"<extraction of {len(names)} shared arrays>", "exec"), namespace)
     return numba.njit(inline="always")(namespace["extract"])
 
 
